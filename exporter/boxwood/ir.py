@@ -1,0 +1,229 @@
+"""The hub: one in-memory form of an additive tree ensemble.
+
+Readers build an :class:`Ensemble`; writers and evaluators consume it. Nothing here
+imports scikit-learn or writes files. Every decision rule that an evaluator needs is
+stated as data instead of being left to whoever reads the model:
+
+* a numeric split sends a record left when ``x <= threshold``, where ``x`` is the
+  input first rounded to ``Ensemble.compare_precision`` ("float64": as given;
+  "float32": rounded to the nearest float32, as scikit-learn's classic trees do);
+* a missing value (NaN or an absent reading) goes left or right as the node's
+  ``missing_left`` flag says, or is refused outright when
+  ``Ensemble.missing_values == "reject"``;
+* a categorical split sends a record left when its category code is in the node's
+  ``left_categories``; a missing or unseen category follows ``missing_left``;
+* the raw score of output ``k`` is ``base_values[k]`` plus the leaf values of the
+  trees whose ``output == k``, added one by one in tree order in float64
+  (``combine == "sum"``), or their mean (``combine == "mean"``);
+* the post-transform maps raw scores to the user-facing output.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Dict, List, Optional, Sequence, Tuple
+
+TASKS = ("regression", "classification")
+PRECISIONS = ("float64", "float32")
+COMBINES = ("sum", "mean")
+MISSING_POLICIES = ("route", "reject")
+# identity: raw score as is; exp: math.exp(raw); logistic: 1 / (1 + exp(-raw));
+# logistic_double: logistic(2 * raw) (exponential loss); softmax: over the outputs.
+POST_TRANSFORMS = ("identity", "exp", "logistic", "logistic_double", "softmax")
+# How a binary classifier turns its raw score into the positive class.
+BINARY_RULES = ("raw_gt_0", "raw_ge_0")
+
+LEAF = -1
+
+
+class ModelError(ValueError):
+    """An ensemble that breaks the hub's rules (raised by :meth:`Ensemble.check`)."""
+
+
+@dataclass
+class Feature:
+    """One input column as the source model sees it.
+
+    ``categories`` is None for a numeric feature; for a categorical feature it lists
+    the category values (strings or numbers) in code order: code ``i`` stands for
+    ``categories[i]``.
+    """
+
+    name: str
+    kind: str = "numeric"  # "numeric" or "categorical"
+    categories: Optional[List[Any]] = None
+
+    @property
+    def is_categorical(self) -> bool:
+        return self.kind == "categorical"
+
+
+@dataclass
+class Tree:
+    """One regression tree in parallel arrays, node 0 is the root.
+
+    For a leaf: ``feature[i] == LEAF``, ``left[i] == right[i] == LEAF`` and
+    ``value[i]`` is what the leaf adds to its output (learning rate already applied).
+    For a split node: ``value[i]`` is 0.0 and ignored. ``left_categories[i]`` is
+    None for a numeric split and a sorted tuple of category codes for a categorical
+    split (then ``threshold[i]`` is ignored and written as 0.0).
+    """
+
+    output: int
+    feature: List[int]
+    threshold: List[float]
+    left: List[int]
+    right: List[int]
+    missing_left: List[bool]
+    value: List[float]
+    left_categories: List[Optional[Tuple[int, ...]]] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        if not self.left_categories:
+            self.left_categories = [None] * len(self.feature)
+
+    @property
+    def n_nodes(self) -> int:
+        return len(self.feature)
+
+    def depth(self) -> int:
+        """Number of splits on the longest root-to-leaf path."""
+        best = 0
+        stack = [(0, 0)]
+        while stack:
+            node, d = stack.pop()
+            if self.feature[node] == LEAF:
+                best = max(best, d)
+            else:
+                stack.append((self.left[node], d + 1))
+                stack.append((self.right[node], d + 1))
+        return best
+
+    def n_leaves(self) -> int:
+        return sum(1 for f in self.feature if f == LEAF)
+
+
+@dataclass
+class Reference:
+    """Reference rows scored by the source model, carried so a device can test itself.
+
+    ``rows`` are records in feature order (numbers, category values, None for
+    missing); ``raw`` holds the source's raw scores per row (one per output) and
+    ``transformed`` its post-transformed outputs per row (for a binary classifier
+    the positive-class probability).
+    """
+
+    rows: List[List[Any]]
+    raw: List[List[float]]
+    transformed: List[List[float]]
+
+
+@dataclass
+class Ensemble:
+    """An additive tree ensemble with its decision semantics spelled out."""
+
+    task: str
+    features: List[Feature]
+    trees: List[Tree]
+    base_values: List[float]
+    post_transform: str = "identity"
+    combine: str = "sum"
+    compare_precision: str = "float64"
+    missing_values: str = "route"
+    classes: Optional[List[Any]] = None
+    binary_rule: Optional[str] = None
+    output_names: List[str] = field(default_factory=list)
+    accepts_infinity: bool = True
+    provenance: Dict[str, Any] = field(default_factory=dict)
+    reference: Optional["Reference"] = None
+
+    @property
+    def n_outputs(self) -> int:
+        return len(self.base_values)
+
+    @property
+    def n_nodes(self) -> int:
+        return sum(t.n_nodes for t in self.trees)
+
+    def max_depth(self) -> int:
+        return max((t.depth() for t in self.trees), default=0)
+
+    def check(self) -> "Ensemble":
+        """Raise :class:`ModelError` unless every rule of the hub holds; return self."""
+        _one_of("task", self.task, TASKS)
+        _one_of("post_transform", self.post_transform, POST_TRANSFORMS)
+        _one_of("combine", self.combine, COMBINES)
+        _one_of("compare_precision", self.compare_precision, PRECISIONS)
+        _one_of("missing_values", self.missing_values, MISSING_POLICIES)
+        if not self.features:
+            raise ModelError("the ensemble has no input features")
+        names = [f.name for f in self.features]
+        if len(set(names)) != len(names):
+            raise ModelError("feature names repeat: %r" % names)
+        for f in self.features:
+            _one_of("feature kind of %r" % f.name, f.kind, ("numeric", "categorical"))
+            if f.is_categorical and not f.categories:
+                raise ModelError("categorical feature %r lists no categories" % f.name)
+        k = self.n_outputs
+        if k < 1:
+            raise ModelError("the ensemble has no outputs (no base values)")
+        if not all(isinstance(b, float) and math.isfinite(b) for b in self.base_values):
+            raise ModelError("base values must be finite floats: %r" % self.base_values)
+        if self.task == "classification":
+            if not self.classes or len(self.classes) < 2:
+                raise ModelError("a classifier needs at least two class labels")
+            if len(self.classes) == 2:
+                if k != 1:
+                    raise ModelError("a binary classifier has one raw output, not %d" % k)
+                _one_of("binary_rule", self.binary_rule, BINARY_RULES)
+            elif k != len(self.classes):
+                raise ModelError("%d classes but %d raw outputs" % (len(self.classes), k))
+        if self.output_names and len(self.output_names) != k:
+            raise ModelError("%d output names for %d outputs" % (len(self.output_names), k))
+        for index, tree in enumerate(self.trees):
+            _check_tree(tree, index, self.features, k)
+        return self
+
+
+def _one_of(what: str, value: Any, allowed: Sequence[Any]) -> None:
+    if value not in allowed:
+        raise ModelError("%s is %r; expected one of %s" % (what, value, ", ".join(map(repr, allowed))))
+
+
+def _check_tree(tree: Tree, index: int, features: List[Feature], n_outputs: int) -> None:
+    where = "tree %d" % index
+    n = tree.n_nodes
+    arrays = (tree.threshold, tree.left, tree.right, tree.missing_left, tree.value, tree.left_categories)
+    if n == 0 or any(len(a) != n for a in arrays):
+        raise ModelError("%s: node arrays are empty or of unequal length" % where)
+    if not 0 <= tree.output < n_outputs:
+        raise ModelError("%s: output %d out of range 0..%d" % (where, tree.output, n_outputs - 1))
+    seen = [False] * n
+    stack = [0]
+    while stack:
+        node = stack.pop()
+        if seen[node]:
+            raise ModelError("%s: node %d is reached twice (not a tree)" % (where, node))
+        seen[node] = True
+        f = tree.feature[node]
+        if f == LEAF:
+            if tree.left[node] != LEAF or tree.right[node] != LEAF:
+                raise ModelError("%s: leaf %d has children" % (where, node))
+            if not math.isfinite(tree.value[node]):
+                raise ModelError("%s: leaf %d value is not finite" % (where, node))
+            continue
+        if not 0 <= f < len(features):
+            raise ModelError("%s: node %d splits on feature %d, out of range" % (where, node, f))
+        cats = tree.left_categories[node]
+        if features[f].is_categorical != (cats is not None):
+            raise ModelError("%s: node %d split kind does not match feature %r" % (where, node, features[f].name))
+        if cats is not None and not all(0 <= c < len(features[f].categories) for c in cats):
+            raise ModelError("%s: node %d has a category code out of range" % (where, node))
+        if cats is None and math.isnan(tree.threshold[node]):
+            raise ModelError("%s: node %d threshold is NaN" % (where, node))
+        for child in (tree.left[node], tree.right[node]):
+            if not 0 < child < n:
+                raise ModelError("%s: node %d has child %d out of range" % (where, node, child))
+            stack.append(child)
+    if not all(seen):
+        raise ModelError("%s: node %d is unreachable" % (where, seen.index(False)))

@@ -1,0 +1,45 @@
+"""Front ends: each reader turns one family of fitted models into an :class:`~boxwood.ir.Ensemble`.
+
+To add an estimator, write a module here with a ``read(model)`` function that returns
+an Ensemble for the models it knows and None otherwise, add it to ``READERS`` and to
+``SUPPORTED``, and add it to the conformance suite in tests/.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+from ..ir import Ensemble
+from . import sklearn_boosting
+from .common import UnsupportedModel
+
+READERS = (sklearn_boosting.read,)
+
+SUPPORTED = (
+    "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
+    "sklearn.ensemble.GradientBoostingClassifier (loss: log_loss, exponential; binary and multiclass)",
+    "sklearn.ensemble.HistGradientBoostingRegressor (loss: squared_error, absolute_error, gamma, poisson, quantile)",
+    "sklearn.ensemble.HistGradientBoostingClassifier (binary and multiclass)",
+)
+
+
+def read_model(model: Any) -> Ensemble:
+    """Read a fitted estimator into the hub, or raise :class:`UnsupportedModel`."""
+    from sklearn.base import BaseEstimator
+    from sklearn.exceptions import NotFittedError
+    from sklearn.utils.validation import check_is_fitted
+
+    if isinstance(model, BaseEstimator):
+        try:
+            check_is_fitted(model)
+        except NotFittedError:
+            raise UnsupportedModel("%s is not fitted; fit it before exporting" % type(model).__name__)
+    for read in READERS:
+        ensemble = read(model)
+        if ensemble is not None:
+            return ensemble
+    raise UnsupportedModel(
+        "cannot export %s.%s; supported models:\n  - %s"
+        % (type(model).__module__, type(model).__name__, "\n  - ".join(SUPPORTED)))
+
+
+__all__ = ["read_model", "UnsupportedModel", "SUPPORTED"]

@@ -1,0 +1,8 @@
+"""Back ends: each writer turns an :class:`~boxwood.ir.Ensemble` into one artefact format.
+
+A writer never imports scikit-learn. To add a target, add a module here with a
+``write(ensemble, path)`` function and register its file extension in ``WRITERS``.
+"""
+from . import json_artefact
+
+WRITERS = {".json": json_artefact.write}

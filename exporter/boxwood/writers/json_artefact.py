@@ -1,0 +1,113 @@
+"""Write the boxwood JSON artefact (format version 1).
+
+The layout is documented by schemas/tree-ensemble.schema.json and the page
+docs/artefact-format.md. The file is the canonical JSON of the document (keys
+sorted, no spaces) preceded by its sha256 digest, so the same ensemble always gives
+the same bytes, and floats are written with Python's shortest round-trip repr, so
+they read back to the same bits. Infinite thresholds are written as the strings
+"inf" and "-inf" (JSON has no infinity).
+"""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any, Dict, List, Optional, Union
+
+from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes
+
+from ..ir import Ensemble
+
+FORMAT_VERSION = 1
+# CSV cells (after trimming spaces) that mean "missing"; JSON null and NaN do too.
+MISSING_TOKENS = ["", "NA", "NaN", "nan", "null"]
+
+
+def number(v: float) -> Union[float, str]:
+    """A float as JSON can carry it: itself, or "inf"/"-inf"."""
+    if math.isinf(v):
+        return "inf" if v > 0 else "-inf"
+    if math.isnan(v):
+        raise ValueError("NaN cannot be written into an artefact")
+    return float(v)
+
+
+def _cell(v: Any) -> Any:
+    if isinstance(v, float):
+        return None if math.isnan(v) else number(v)
+    return v
+
+
+def to_document(ensemble: Ensemble) -> Dict[str, Any]:
+    """The artefact body (everything but the digest) for ``ensemble``."""
+    ensemble.check()
+    features = []
+    for f in ensemble.features:
+        entry: Dict[str, Any] = {"name": f.name, "kind": f.kind}
+        if f.is_categorical:
+            entry["categories"] = list(f.categories)
+        features.append(entry)
+    trees = []
+    for t in ensemble.trees:
+        tree: Dict[str, Any] = {
+            "output": t.output,
+            "feature": list(t.feature),
+            "threshold": [number(v) for v in t.threshold],
+            "left": list(t.left),
+            "right": list(t.right),
+            "missing_left": [bool(m) for m in t.missing_left],
+            "value": [number(v) for v in t.value],
+        }
+        cats = {str(i): list(c) for i, c in enumerate(t.left_categories) if c is not None}
+        if cats:
+            tree["left_categories"] = cats
+        trees.append(tree)
+    outputs: Dict[str, Any] = {
+        "post_transform": ensemble.post_transform,
+        "names": list(ensemble.output_names) or ["output_%d" % i for i in range(ensemble.n_outputs)],
+    }
+    if ensemble.classes is not None:
+        outputs["classes"] = list(ensemble.classes)
+    if ensemble.binary_rule is not None:
+        outputs["binary_rule"] = ensemble.binary_rule
+    doc: Dict[str, Any] = {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "task": ensemble.task,
+        "inputs": {
+            "features": features,
+            "compare_precision": ensemble.compare_precision,
+            "missing_values": ensemble.missing_values,
+            "accepts_infinity": ensemble.accepts_infinity,
+            "missing_tokens": list(MISSING_TOKENS),
+        },
+        "outputs": outputs,
+        "ensemble": {
+            "combine": ensemble.combine,
+            "base_values": [number(v) for v in ensemble.base_values],
+            "trees": trees,
+        },
+        "provenance": ensemble.provenance,
+    }
+    ref = ensemble.reference
+    if ref is not None:
+        doc["self_check"] = {
+            "rows": [[_cell(v) for v in row] for row in ref.rows],
+            "raw": [[number(v) for v in r] for r in ref.raw],
+            "transformed": [[number(v) for v in r] for r in ref.transformed],
+        }
+    return doc
+
+
+def to_bytes(ensemble: Ensemble) -> bytes:
+    """The complete artefact file: digest line first, then the canonical body."""
+    return artefact_bytes(to_document(ensemble))
+
+
+def write(ensemble: Ensemble, path: Union[str, Path]) -> int:
+    """Write the artefact to ``path`` (atomically: a temporary file, then rename); return its size."""
+    data = to_bytes(ensemble)
+    path = Path(path)
+    tmp = path.with_name(path.name + ".partial")
+    tmp.write_bytes(data)
+    tmp.replace(path)
+    return len(data)

@@ -1,0 +1,633 @@
+"""boxwood device scorer: load a boxwood tree-ensemble artefact and score records.
+
+This one file is the whole scoring core. It uses only the Python standard library
+(json, hashlib, math, struct) and Python 3.8 syntax, so it can be copied alone onto
+a box that has nothing else. Loading never executes anything from the artefact: it
+is parsed as JSON, its sha256 digest is verified, every size is bounded, every index
+is range-checked, every tree is checked to be a tree, and the artefact's own
+self-check rows are scored and compared before the model is handed out.
+
+    from scorer import load          # or: from boxwood_runtime import load
+    model = load("model.json")
+    model.predict({"ambient_c": 24.5, "room_type": "chiller", ...})
+    model.predict([[24.5, "chiller", ...], [23.0, "freezer", ...]])
+
+Decision rules (the artefact states them; format page: docs/artefact-format.md):
+a numeric split sends a record left when ``x <= threshold``, after rounding ``x`` to
+float32 where the artefact's ``compare_precision`` says so; a missing value follows
+the node's ``missing_left`` flag; a categorical split sends a record left when the
+category's code is listed for that node. Raw scores start at the base value and add
+leaf values tree by tree in float64, which reproduces the source model bit for bit.
+"""
+import hashlib
+import json
+import math
+import struct
+
+FORMAT_NAME = "boxwood.tree-ensemble"
+FORMAT_VERSIONS = (1,)
+SCORER_VERSION = "0.1.0"
+DIGEST_KEY = "boxwood_digest"
+_DIGEST_PREFIX = b'{"' + DIGEST_KEY.encode() + b'":"sha256:'
+
+# Bounds applied while loading; pass your own to load() for a bigger or smaller box.
+DEFAULT_LIMITS = {
+    "max_bytes": 256 * 1024 * 1024,
+    "max_features": 100000,
+    "max_categories": 100000,
+    "max_outputs": 10000,
+    "max_trees": 200000,
+    "max_nodes_per_tree": 1 << 22,
+    "max_nodes": 1 << 26,
+    "max_depth": 4096,
+}
+_NAN = float("nan")
+_INF = float("inf")
+_NONFINITE = {"inf": _INF, "-inf": -_INF}
+# Transformed outputs (probabilities, exp) are compared with the self-check within
+# this many units in the last place; raw scores must match exactly.
+SELF_CHECK_ULPS = 8
+
+
+class ArtefactError(ValueError):
+    """The artefact is malformed, tampered with, too large, or of an unknown version."""
+
+
+class RecordError(ValueError):
+    """A record cannot be scored. ``row`` and ``field`` say where; ``reason`` says why."""
+
+    def __init__(self, row, field, reason):
+        self.row = row
+        self.field = field
+        self.reason = reason
+        where = "record %s" % (row,) if row is not None else "record"
+        if field is not None:
+            where += ", field %r" % (field,)
+        ValueError.__init__(self, "%s: %s" % (where, reason))
+
+
+# ----------------------------------------------------------------------------- digest
+def canonical_bytes(body):
+    """The canonical JSON bytes of an artefact body (the document without its digest).
+
+    Keys sorted, no spaces, ASCII only, no NaN or infinity. The digest is the sha256
+    of these bytes, and a written artefact file is exactly
+    ``{"boxwood_digest":"sha256:<hex>",`` followed by these bytes minus their ``{``.
+    """
+    return json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True,
+                      allow_nan=False).encode("ascii")
+
+
+def artefact_bytes(body):
+    """The bytes of an artefact file for ``body``: digest first, then the canonical body."""
+    content = canonical_bytes(body)
+    digest = hashlib.sha256(content).hexdigest()
+    return _DIGEST_PREFIX + digest.encode("ascii") + b'",' + content[1:] + b"\n"
+
+
+def _verify_file_bytes(data):
+    """Check the digest of a file in the canonical layout; return the parsed document."""
+    text = data.rstrip(b"\r\n")
+    n = len(_DIGEST_PREFIX)
+    if text[:n] == _DIGEST_PREFIX and text[n + 64:n + 66] == b'",':
+        stated = text[n:n + 64].decode("ascii", "replace")
+        actual = hashlib.sha256(b"{" + text[n + 66:]).hexdigest()
+        if actual != stated:
+            raise ArtefactError("digest mismatch: the file says sha256 %s but its content hashes to %s; "
+                                "the file was changed or damaged after export" % (stated, actual))
+        doc = _parse_json(text)
+        if doc.get(DIGEST_KEY) != "sha256:" + stated:
+            raise ArtefactError("the digest field is repeated or altered")
+        return doc
+    # Not in the canonical layout (e.g. pretty-printed by hand): verify by re-serialising.
+    doc = _parse_json(text)
+    verify_digest(doc)
+    return doc
+
+
+def _parse_json(data):
+    try:
+        doc = json.loads(data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data)
+    except (ValueError, UnicodeError) as exc:
+        raise ArtefactError("not valid JSON (truncated or damaged file?): %s" % (exc,))
+    if not isinstance(doc, dict):
+        raise ArtefactError("the artefact must be a JSON object")
+    return doc
+
+
+def verify_digest(doc):
+    """Check ``doc[DIGEST_KEY]`` against the canonical bytes of the rest of ``doc``."""
+    stated = doc.get(DIGEST_KEY)
+    if not isinstance(stated, str) or not stated.startswith("sha256:"):
+        raise ArtefactError("the artefact has no %r field of the form 'sha256:<hex>'" % DIGEST_KEY)
+    body = dict((k, v) for k, v in doc.items() if k != DIGEST_KEY)
+    try:
+        actual = "sha256:" + hashlib.sha256(canonical_bytes(body)).hexdigest()
+    except (TypeError, ValueError) as exc:
+        raise ArtefactError("the artefact holds values JSON cannot carry: %s" % (exc,))
+    if actual != stated:
+        raise ArtefactError("digest mismatch: the artefact says %s but its content hashes to %s; "
+                            "it was changed or damaged after export" % (stated, actual))
+
+
+# ----------------------------------------------------------------------------- loading
+def load(source, limits=None, unknown_category="error", self_check=True):
+    """Load an artefact and return a :class:`Model`.
+
+    ``source`` is a file path, the file's bytes, or the already parsed dict.
+    ``limits`` overrides entries of DEFAULT_LIMITS. ``unknown_category`` is "error"
+    (a category value the model never saw is a RecordError) or "as_missing" (route
+    it as the source model does: scikit-learn treats unseen categories as missing).
+    ``self_check`` scores the artefact's embedded reference rows and refuses the
+    model unless raw scores match exactly and transformed outputs within
+    SELF_CHECK_ULPS units in the last place.
+    """
+    lim = dict(DEFAULT_LIMITS)
+    if limits:
+        lim.update(limits)
+    if isinstance(source, dict):
+        doc = source
+        verify_digest(doc)
+    else:
+        if isinstance(source, (bytes, bytearray)):
+            data = bytes(source)
+        else:
+            with open(source, "rb") as fh:
+                data = fh.read(lim["max_bytes"] + 1)
+        if len(data) > lim["max_bytes"]:
+            raise ArtefactError("the artefact is larger than max_bytes=%d" % lim["max_bytes"])
+        doc = _verify_file_bytes(data)
+    model = Model(doc, lim, unknown_category)
+    if self_check:
+        ok, message = model.self_check()
+        if not ok:
+            raise ArtefactError("self-check failed: " + message)
+    return model
+
+
+def _need(cond, message):
+    if not cond:
+        raise ArtefactError(message)
+
+
+def _get(obj, key, kind, where):
+    _need(isinstance(obj, dict), "%s must be an object" % where)
+    _need(key in obj, "%s lacks %r" % (where, key))
+    value = obj[key]
+    ok = isinstance(value, kind) and not (kind is not bool and isinstance(value, bool))
+    _need(ok, "%s.%s has the wrong type" % (where, key))
+    return value
+
+
+def _number(value, where):
+    """A JSON number, or one of the strings "inf" / "-inf", as a float."""
+    if isinstance(value, str) and value in _NONFINITE:
+        return _NONFINITE[value]
+    _need(isinstance(value, (int, float)) and not isinstance(value, bool), "%s is not a number" % where)
+    value = float(value)
+    _need(value == value, "%s is NaN" % where)
+    return value
+
+
+class Model:
+    """A loaded, validated ensemble. Use :func:`load` to make one."""
+
+    def __init__(self, doc, limits, unknown_category="error"):
+        _need(unknown_category in ("error", "as_missing"),
+              "unknown_category must be 'error' or 'as_missing'")
+        _need(doc.get("format") == FORMAT_NAME, "not a boxwood tree-ensemble artefact (format %r)"
+              % (doc.get("format"),))
+        version = doc.get("format_version")
+        _need(version in FORMAT_VERSIONS, "format_version %r is not one this scorer (%s) reads; it reads %s"
+              % (version, SCORER_VERSION, ", ".join(str(v) for v in FORMAT_VERSIONS)))
+        self.doc = doc
+        self.unknown_category = unknown_category
+        self.task = _get(doc, "task", str, "artefact")
+        _need(self.task in ("regression", "classification"), "unknown task %r" % self.task)
+        self._read_inputs(_get(doc, "inputs", dict, "artefact"), limits)
+        self._read_outputs(_get(doc, "outputs", dict, "artefact"), limits)
+        self._read_ensemble(_get(doc, "ensemble", dict, "artefact"), limits)
+
+    # -- artefact parts ----------------------------------------------------------
+    def _read_inputs(self, inputs, limits):
+        self.compare_precision = _get(inputs, "compare_precision", str, "inputs")
+        _need(self.compare_precision in ("float64", "float32"), "unknown compare_precision")
+        self.missing_values = _get(inputs, "missing_values", str, "inputs")
+        _need(self.missing_values in ("route", "reject"), "unknown missing_values policy")
+        self.accepts_infinity = _get(inputs, "accepts_infinity", bool, "inputs")
+        tokens = _get(inputs, "missing_tokens", list, "inputs")
+        _need(all(isinstance(t, str) for t in tokens), "inputs.missing_tokens must be strings")
+        self.missing_tokens = frozenset(tokens)
+        feats = _get(inputs, "features", list, "inputs")
+        _need(0 < len(feats) <= limits["max_features"], "feature count out of bounds")
+        self.feature_names = []
+        self.categories = []  # per feature: None, or the category values in code order
+        self._codes = []  # per feature: None, or {category value: code}
+        for i, f in enumerate(feats):
+            where = "inputs.features[%d]" % i
+            name = _get(f, "name", str, where)
+            kind = _get(f, "kind", str, where)
+            _need(kind in ("numeric", "categorical"), "%s.kind is %r" % (where, kind))
+            self.feature_names.append(name)
+            if kind == "numeric":
+                self.categories.append(None)
+                self._codes.append(None)
+                continue
+            cats = _get(f, "categories", list, where)
+            _need(0 < len(cats) <= limits["max_categories"], "%s has no or too many categories" % where)
+            codes = {}
+            for code, c in enumerate(cats):
+                _need(isinstance(c, (str, int, float)) and not isinstance(c, bool),
+                      "%s.categories[%d] must be a string or a number" % (where, code))
+                _need(c not in codes, "%s.categories repeats %r" % (where, c))
+                codes[c] = code
+            self.categories.append(list(cats))
+            self._codes.append(codes)
+        _need(len(set(self.feature_names)) == len(self.feature_names), "feature names repeat")
+        self._index = dict((n, i) for i, n in enumerate(self.feature_names))
+        self.n_features = len(self.feature_names)
+
+    def _read_outputs(self, outputs, limits):
+        self.post_transform = _get(outputs, "post_transform", str, "outputs")
+        _need(self.post_transform in ("identity", "exp", "logistic", "logistic_double", "softmax"),
+              "unknown post_transform %r" % self.post_transform)
+        self.output_names = _get(outputs, "names", list, "outputs")
+        self.classes = outputs.get("classes")
+        self.binary_rule = outputs.get("binary_rule")
+        if self.task == "classification":
+            _need(isinstance(self.classes, list) and len(self.classes) >= 2, "a classifier needs class labels")
+            if len(self.classes) == 2:
+                _need(self.binary_rule in ("raw_gt_0", "raw_ge_0"), "unknown binary_rule")
+
+    def _read_ensemble(self, ens, limits):
+        self.combine = _get(ens, "combine", str, "ensemble")
+        _need(self.combine in ("sum", "mean"), "unknown combine %r" % self.combine)
+        base = _get(ens, "base_values", list, "ensemble")
+        _need(0 < len(base) <= limits["max_outputs"], "base_values count out of bounds")
+        self.base_values = [_number(b, "ensemble.base_values[%d]" % i) for i, b in enumerate(base)]
+        self.n_outputs = k = len(self.base_values)
+        _need(len(self.output_names) == k, "outputs.names must name each of the %d outputs" % k)
+        if self.task == "classification":
+            want = 1 if len(self.classes) == 2 else len(self.classes)
+            _need(k == want, "%d classes need %d raw outputs, not %d" % (len(self.classes), want, k))
+        _need(self.post_transform != "softmax" or k >= 2, "softmax needs two or more outputs")
+        trees = _get(ens, "trees", list, "ensemble")
+        _need(len(trees) <= limits["max_trees"], "more than max_trees=%d trees" % limits["max_trees"])
+        self.trees_per_output = [[] for _ in range(k)]
+        self.n_trees = len(trees)
+        self.n_nodes = 0
+        self.max_depth = 0
+        for t, tree in enumerate(trees):
+            output = _get(tree, "output", int, "ensemble.trees[%d]" % t)
+            _need(0 <= output < k, "ensemble.trees[%d].output out of range" % t)
+            root, n, depth = self._build_tree(tree, t, limits)
+            self.n_nodes += n
+            _need(self.n_nodes <= limits["max_nodes"], "more than max_nodes=%d nodes" % limits["max_nodes"])
+            self.max_depth = max(self.max_depth, depth)
+            self.trees_per_output[output].append(root)
+        self._plan = [(self.base_values[j], tuple(self.trees_per_output[j])) for j in range(k)]
+
+    def _build_tree(self, tree, t, limits):
+        """Check one tree's arrays and turn them into nested tuples (fast to walk).
+
+        A leaf becomes its float value. A numeric split becomes
+        ``(feature, threshold, left, right, missing_left)``; a categorical split becomes
+        ``(feature, nan, left, right, (missing_left, codes_going_left))``: NaN makes both
+        comparisons false, so the walk falls through to the categorical test.
+        """
+        where = "ensemble.trees[%d]" % t
+        feature = _get(tree, "feature", list, where)
+        n = len(feature)
+        _need(0 < n <= limits["max_nodes_per_tree"], "%s node count out of bounds" % where)
+        arrays = {}
+        for key in ("threshold", "left", "right", "missing_left", "value"):
+            arrays[key] = _get(tree, key, list, where)
+            _need(len(arrays[key]) == n, "%s.%s has %d entries, expected %d" % (where, key, len(arrays[key]), n))
+        cat_sets = tree.get("left_categories", {})
+        _need(isinstance(cat_sets, dict), "%s.left_categories must be an object" % where)
+        left, right = arrays["left"], arrays["right"]
+        # Walk from the root; every node must be reached exactly once (a tree, no cycles).
+        depth_of = [-1] * n
+        depth_of[0] = 0
+        order = [0]
+        i = 0
+        while i < len(order):
+            node = order[i]
+            i += 1
+            f = feature[node]
+            _need(isinstance(f, int) and not isinstance(f, bool), "%s.feature[%d] is not an integer" % (where, node))
+            if f == -1:
+                _need(left[node] == -1 and right[node] == -1, "%s: leaf %d has children" % (where, node))
+                continue
+            _need(0 <= f < self.n_features, "%s.feature[%d]=%r out of range" % (where, node, f))
+            _need(depth_of[node] < limits["max_depth"], "%s deeper than max_depth=%d" % (where, limits["max_depth"]))
+            for child in (left[node], right[node]):
+                _need(isinstance(child, int) and not isinstance(child, bool) and 0 < child < n,
+                      "%s: node %d has child %r out of range" % (where, node, child))
+                _need(depth_of[child] == -1, "%s: node %d is reached twice (not a tree)" % (where, child))
+                depth_of[child] = depth_of[node] + 1
+                order.append(child)
+        _need(len(order) == n, "%s has unreachable nodes" % where)
+        for key in cat_sets:
+            _need(key.isdigit() and int(key) < n and feature[int(key)] >= 0,
+                  "%s.left_categories names node %r, which is not a split" % (where, key))
+        built = [None] * n
+        for node in reversed(order):  # children before parents
+            f = feature[node]
+            if f == -1:
+                built[node] = _number(arrays["value"][node], "%s.value[%d]" % (where, node))
+                _need(abs(built[node]) != _INF, "%s.value[%d] is not finite" % (where, node))
+                continue
+            missing_left = arrays["missing_left"][node]
+            _need(isinstance(missing_left, bool), "%s.missing_left[%d] is not true/false" % (where, node))
+            key = str(node)
+            if self.categories[f] is None:
+                _need(key not in cat_sets, "%s: node %d lists categories but splits a numeric feature" % (where, node))
+                threshold = _number(arrays["threshold"][node], "%s.threshold[%d]" % (where, node))
+                built[node] = (f, threshold, built[left[node]], built[right[node]], missing_left)
+            else:
+                _need(key in cat_sets, "%s: node %d splits a categorical feature but lists no categories"
+                      % (where, node))
+                codes = cat_sets[key]
+                _need(isinstance(codes, list) and all(
+                    isinstance(c, int) and not isinstance(c, bool) and 0 <= c < len(self.categories[f])
+                    for c in codes), "%s.left_categories[%r] holds a bad category code" % (where, key))
+                built[node] = (f, _NAN, built[left[node]], built[right[node]], (missing_left, frozenset(codes)))
+        return built[0], n, max(depth_of)
+
+    # -- records -----------------------------------------------------------------
+    def prepare(self, record, row=None):
+        """Validate one record and return the list of values the trees compare.
+
+        ``record`` is a dict keyed by feature name (other keys are ignored) or a
+        sequence in feature order. None or NaN means missing. Raises RecordError
+        naming the row and the field.
+        """
+        if isinstance(record, dict):
+            values = []
+            for name in self.feature_names:
+                if name not in record:
+                    raise RecordError(row, name, "the field is absent (write null for a missing value)")
+                values.append(record[name])
+        elif isinstance(record, (list, tuple)):
+            if len(record) != self.n_features:
+                raise RecordError(row, None, "has %d values, the model takes %d (%s)"
+                                  % (len(record), self.n_features, ", ".join(self.feature_names)))
+            values = record
+        else:
+            raise RecordError(row, None, "expected a dict or a sequence, got %s" % type(record).__name__)
+        x = []
+        for i, v in enumerate(values):
+            codes = self._codes[i]
+            if codes is None:
+                x.append(self._numeric(v, i, row))
+            else:
+                x.append(self._category(v, i, row))
+        if self.compare_precision == "float32":
+            try:
+                x = list(struct.unpack("<%df" % len(x), struct.pack("<%df" % len(x), *x)))
+            except OverflowError:
+                for i, v in enumerate(x):
+                    try:
+                        struct.pack("<f", v)
+                    except OverflowError:
+                        raise RecordError(row, self.feature_names[i],
+                                          "%r is outside the float32 range this model compares in" % (v,))
+                raise
+        return x
+
+    def _numeric(self, v, i, row):
+        if v is None:
+            return self._missing(i, row)
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise RecordError(row, self.feature_names[i], "expected a number, got %s %r"
+                              % (type(v).__name__, v))
+        v = float(v)
+        if v != v:
+            return self._missing(i, row)
+        if (v == _INF or v == -_INF) and not self.accepts_infinity:
+            raise RecordError(row, self.feature_names[i], "infinity is not accepted by this model")
+        return v
+
+    def _category(self, v, i, row):
+        if v is None or (isinstance(v, float) and v != v):
+            return self._missing(i, row)
+        code = self._codes[i].get(v) if not isinstance(v, bool) and isinstance(v, (str, int, float)) else None
+        if code is None:
+            if isinstance(v, bool) or not isinstance(v, (str, int, float)):
+                raise RecordError(row, self.feature_names[i], "expected a category value, got %s"
+                                  % type(v).__name__)
+            if self.unknown_category == "error":
+                shown = ", ".join(repr(c) for c in self.categories[i][:20])
+                raise RecordError(row, self.feature_names[i], "unknown category %r (known: %s%s)"
+                                  % (v, shown, ", ..." if len(self.categories[i]) > 20 else ""))
+            return self._missing(i, row)
+        return code
+
+    def _missing(self, i, row):
+        if self.missing_values == "reject":
+            raise RecordError(row, self.feature_names[i],
+                              "the value is missing, and this model does not accept missing values")
+        return _NAN
+
+    def record_from_text(self, fields, row=None):
+        """Turn a dict of strings (a CSV row) into a record: numbers parsed, missing tokens to None."""
+        record = {}
+        for i, name in enumerate(self.feature_names):
+            if name not in fields:
+                raise RecordError(row, name, "the column is absent")
+            text = fields[name]
+            if text is None or text.strip() in self.missing_tokens:
+                record[name] = None
+                continue
+            text = text.strip()
+            cats = self.categories[i]
+            if cats is not None and text in self._codes[i]:
+                record[name] = text
+                continue
+            try:
+                record[name] = float(text)
+            except ValueError:
+                if cats is None:
+                    raise RecordError(row, name, "expected a number, got %r" % text)
+                record[name] = text  # an unknown category; prepare() decides what happens
+        return record
+
+    # -- scoring -----------------------------------------------------------------
+    def raw_scores(self, x):
+        """Raw scores (one float per output) for a prepared record ``x``."""
+        out = []
+        for total, roots in self._plan:
+            acc = 0.0 if self.combine == "mean" else total
+            for node in roots:
+                while node.__class__ is tuple:
+                    f, t, lo, hi, m = node
+                    v = x[f]
+                    if v <= t:
+                        node = lo
+                    elif v > t:
+                        node = hi
+                    elif m is True:  # v is NaN at a numeric split, missing goes left
+                        node = lo
+                    elif m is False:
+                        node = hi
+                    elif v != v:  # categorical split, missing value
+                        node = lo if m[0] else hi
+                    else:  # categorical split: is the category code in the left set?
+                        node = lo if v in m[1] else hi
+                acc += node
+            if self.combine == "mean":
+                acc = total + acc / len(roots) if roots else total
+            out.append(acc)
+        return out
+
+    def _many(self, records):
+        """True when ``records`` is a batch (a list of records), False for one record."""
+        if isinstance(records, dict):
+            return False
+        if isinstance(records, (list, tuple)):
+            return len(records) == 0 or isinstance(records[0], (dict, list, tuple))
+        raise RecordError(None, None, "expected a record or a list of records, got %s" % type(records).__name__)
+
+    def _apply(self, records, fn):
+        if self._many(records):
+            return [fn(self.raw_scores(self.prepare(r, i))) for i, r in enumerate(records)]
+        return fn(self.raw_scores(self.prepare(records)))
+
+    def decision_function(self, records):
+        """Raw scores: a float per record (one output), or a list of floats (several)."""
+        return self._apply(records, self._raw_out)
+
+    def predict(self, records):
+        """Predicted value (regression) or class label (classification) per record."""
+        return self._apply(records, self._predict_out)
+
+    def predict_proba(self, records):
+        """Class probabilities per record, in the order of ``classes`` (classifiers only)."""
+        if self.task != "classification":
+            raise TypeError("predict_proba is for classifiers; this model does %s" % self.task)
+        return self._apply(records, self._proba_out)
+
+    def transform_raw(self, raw):
+        """Apply the post-transform to one list of raw scores."""
+        return transform(self.post_transform, raw)
+
+    def _raw_out(self, raw):
+        return raw[0] if self.n_outputs == 1 else raw
+
+    def _predict_out(self, raw):
+        if self.task == "regression":
+            out = self.transform_raw(raw)
+            return out[0] if self.n_outputs == 1 else out
+        return self.classes[self.class_index(raw)]
+
+    def _proba_out(self, raw):
+        p = self.transform_raw(raw)
+        return [1.0 - p[0], p[0]] if self.n_outputs == 1 else p
+
+    def class_index(self, raw):
+        """Index into ``classes`` of the predicted class for raw scores ``raw``."""
+        if self.n_outputs == 1:
+            positive = raw[0] > 0.0 if self.binary_rule == "raw_gt_0" else raw[0] >= 0.0
+            return 1 if positive else 0
+        best = 0
+        for j in range(1, len(raw)):
+            if raw[j] > raw[best]:
+                best = j
+        return best
+
+    # -- self-check and summary ----------------------------------------------------
+    def self_check(self):
+        """Score the artefact's reference rows; return (ok, one-line message)."""
+        ref = self.doc.get("self_check")
+        if not isinstance(ref, dict):
+            return False, "the artefact carries no self_check section"
+        rows, raws, outs = ref.get("rows"), ref.get("raw"), ref.get("transformed")
+        if not (isinstance(rows, list) and isinstance(raws, list) and isinstance(outs, list)
+                and len(rows) == len(raws) == len(outs) and rows):
+            return False, "the self_check section is malformed"
+        saved, self.unknown_category = self.unknown_category, "as_missing"
+        try:
+            for r, row in enumerate(rows):
+                try:
+                    got = self.raw_scores(self.prepare(row, r))
+                except RecordError as exc:
+                    return False, "reference %s" % (exc,)
+                want = [_number(v, "self_check.raw") for v in raws[r]]
+                if got != want:
+                    return False, "reference row %d: raw scores %r, expected %r" % (r, got, want)
+                got_t = self.transform_raw(got)
+                want_t = [_number(v, "self_check.transformed") for v in outs[r]]
+                for a, b in zip(got_t, want_t):
+                    if ulp_distance(a, b) > SELF_CHECK_ULPS:
+                        return False, "reference row %d: output %r, expected %r" % (r, a, b)
+        except ArtefactError as exc:
+            return False, str(exc)
+        finally:
+            self.unknown_category = saved
+        return True, "%d reference rows reproduced (raw scores exact)" % len(rows)
+
+    def summary(self):
+        """A dict describing the model (task, features, trees, nodes, depth)."""
+        return {
+            "task": self.task,
+            "n_features": self.n_features,
+            "features": self.feature_names,
+            "categorical": [n for n, c in zip(self.feature_names, self.categories) if c is not None],
+            "n_outputs": self.n_outputs,
+            "classes": self.classes,
+            "n_trees": self.n_trees,
+            "n_nodes": self.n_nodes,
+            "max_depth": self.max_depth,
+            "post_transform": self.post_transform,
+            "compare_precision": self.compare_precision,
+            "missing_values": self.missing_values,
+            "digest": self.doc.get(DIGEST_KEY),
+        }
+
+
+# ----------------------------------------------------------------------------- math
+def _exp(v):
+    try:
+        return math.exp(v)
+    except OverflowError:
+        return _INF
+
+
+def _logistic(v):
+    # 1 / (1 + e^-v), the form scipy.special.expit uses; e^-v overflows to inf -> 0.0.
+    return 1.0 / (1.0 + _exp(-v))
+
+
+def transform(name, raw):
+    """Apply a post-transform to a list of raw scores and return a list."""
+    if name == "identity":
+        return list(raw)
+    if name == "exp":
+        return [_exp(v) for v in raw]
+    if name == "logistic":
+        return [_logistic(v) for v in raw]
+    if name == "logistic_double":
+        return [_logistic(2.0 * v) for v in raw]
+    if name == "softmax":
+        top = max(raw)
+        e = [_exp(v - top) for v in raw]
+        total = 0.0
+        for v in e:
+            total += v
+        return [v / total for v in e]
+    raise ValueError("unknown post_transform %r" % (name,))
+
+
+def ulp_distance(a, b):
+    """How many float64 values lie between a and b (0 when equal, huge across NaN)."""
+    if a == b:
+        return 0
+    if a != a or b != b:
+        return 1 << 62
+
+    def key(v):
+        i = struct.unpack("<q", struct.pack("<d", v))[0]
+        return i if i >= 0 else -(i & 0x7FFFFFFFFFFFFFFF)
+
+    return abs(key(a) - key(b))

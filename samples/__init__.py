@@ -1,0 +1,1 @@
+"""Invented, seeded demo data for boxwood (see ``samples/generate.py``)."""
