@@ -1,0 +1,172 @@
+"""The model zoo: every supported estimator x task x option, fitted on open data.
+
+Data sets are the ones scikit-learn ships (no download):
+- diabetes: Efron, Hastie, Johnstone & Tibshirani (2004), "Least Angle Regression", Ann. Statist.
+- breast cancer: Wisconsin Diagnostic Breast Cancer, UCI Machine Learning Repository (1995).
+- iris: Fisher (1936), "The use of multiple measurements in taxonomic problems".
+- wine: UCI Machine Learning Repository, Wine recognition data (Forina et al.).
+- make_hastie_10_2: Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, eq. 10.2.
+- make_friedman1: Friedman (1991), "Multivariate Adaptive Regression Splines", Ann. Statist.
+
+Each case is fitted once per test session (``fitted(name)`` caches) and kept small so
+the whole zoo fits in seconds. ``CASES`` lists the names; ``kind(name)`` tells what a
+case exercises.
+"""
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass
+from typing import Any, Callable, Dict, List, Optional
+
+import numpy as np
+
+
+@dataclass
+class Case:
+    name: str
+    model: Any
+    X: Any  # what the model was fitted on (ndarray or DataFrame)
+    rows: List[List[Any]]  # the same rows in feature order, None for missing
+    task: str
+
+
+def _rows(X: Any) -> List[List[Any]]:
+    if hasattr(X, "columns"):
+        out = []
+        for rec in X.itertuples(index=False):
+            out.append([None if (isinstance(v, float) and v != v) else
+                        (v if isinstance(v, str) else float(v)) for v in rec])
+        return out
+    return [[None if v != v else float(v) for v in r] for r in np.asarray(X, dtype=np.float64)]
+
+
+def _with_nan(X: np.ndarray, rate: float, seed: int) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    X = np.array(X, dtype=np.float64)
+    X[rng.random(X.shape) < rate] = np.nan
+    return X
+
+
+@functools.lru_cache(maxsize=None)
+def _data(which: str):
+    from sklearn import datasets
+
+    if which == "diabetes":
+        return datasets.load_diabetes(return_X_y=True)
+    if which == "breast_cancer":
+        return datasets.load_breast_cancer(return_X_y=True)
+    if which == "iris":
+        return datasets.load_iris(return_X_y=True)
+    if which == "wine":
+        return datasets.load_wine(return_X_y=True)
+    if which == "hastie":
+        X, y = datasets.make_hastie_10_2(n_samples=1200, random_state=1)
+        return X, y
+    if which == "friedman1":
+        return datasets.make_friedman1(n_samples=1200, noise=1.0, random_state=2)
+    raise KeyError(which)
+
+
+def _diabetes_frame(nan_rate: float = 0.0):
+    """Diabetes as a DataFrame with two categorical columns: 'sex' (the data set's own
+    two-valued column, as strings) and 'bmi_band' (bmi cut into five quantile bands)."""
+    import pandas as pd
+    from sklearn import datasets
+
+    d = datasets.load_diabetes(as_frame=True)
+    df = d.data.copy()
+    sex_values = sorted(df["sex"].unique())
+    df["sex"] = df["sex"].map({sex_values[0]: "female", sex_values[1]: "male"}).astype("category")
+    bands = np.digitize(df["bmi"], np.quantile(df["bmi"], [0.2, 0.4, 0.6, 0.8]))
+    df["bmi_band"] = pd.Categorical(np.array(["b%d" % b for b in bands], dtype=object))
+    if nan_rate:
+        rng = np.random.default_rng(5)
+        for col in ["age", "bp", "s1", "s5"]:
+            df.loc[rng.random(len(df)) < nan_rate, col] = np.nan
+        df.loc[rng.random(len(df)) < nan_rate, "bmi_band"] = np.nan
+    return df, d.target.to_numpy()
+
+
+def _build(name: str) -> Case:
+    from sklearn.dummy import DummyRegressor
+    from sklearn.ensemble import (
+        GradientBoostingClassifier as GBC,
+        GradientBoostingRegressor as GBR,
+        HistGradientBoostingClassifier as HGBC,
+        HistGradientBoostingRegressor as HGBR,
+    )
+
+    gb = dict(n_estimators=40, max_depth=3, random_state=0)
+    hgb = dict(max_iter=40, random_state=0, early_stopping=False)
+    spec: Dict[str, Callable[[], Any]] = {
+        "gbr_squared_error": lambda: (GBR(**gb), "diabetes"),
+        "gbr_absolute_error": lambda: (GBR(loss="absolute_error", **gb), "diabetes"),
+        "gbr_huber": lambda: (GBR(loss="huber", alpha=0.8, **gb), "friedman1"),
+        "gbr_quantile": lambda: (GBR(loss="quantile", alpha=0.9, **gb), "friedman1"),
+        "gbr_init_zero": lambda: (GBR(init="zero", **gb), "friedman1"),
+        "gbr_init_dummy_median": lambda: (GBR(init=DummyRegressor(strategy="median"), **gb), "diabetes"),
+        "gbr_subsample": lambda: (GBR(subsample=0.7, max_features=0.5, **gb), "friedman1"),
+        "gbc_binary": lambda: (GBC(**gb), "breast_cancer"),
+        "gbc_multiclass": lambda: (GBC(**gb), "iris"),
+        "gbc_wine": lambda: (GBC(**gb), "wine"),
+        "gbc_exponential": lambda: (GBC(loss="exponential", **gb), "hastie"),
+        "hgbr_squared_error": lambda: (HGBR(**hgb), "diabetes"),
+        "hgbr_absolute_error": lambda: (HGBR(loss="absolute_error", **hgb), "friedman1"),
+        "hgbr_gamma": lambda: (HGBR(loss="gamma", **hgb), "diabetes"),
+        "hgbr_poisson": lambda: (HGBR(loss="poisson", **hgb), "diabetes"),
+        "hgbr_quantile": lambda: (HGBR(loss="quantile", quantile=0.2, **hgb), "friedman1"),
+        "hgbr_nan": lambda: (HGBR(**hgb), "friedman1+nan"),
+        "hgbr_categorical": lambda: (HGBR(**hgb), "diabetes_frame"),
+        "hgbr_categorical_nan": lambda: (HGBR(**hgb), "diabetes_frame+nan"),
+        "hgbr_categorical_codes": lambda: (HGBR(categorical_features=[1], **hgb), "diabetes_codes"),
+        "hgbc_binary": lambda: (HGBC(**hgb), "breast_cancer"),
+        "hgbc_multiclass": lambda: (HGBC(**hgb), "wine"),
+        "hgbc_nan": lambda: (HGBC(**hgb), "hastie+nan"),
+        "hgbc_multiclass_nan": lambda: (HGBC(**hgb), "iris+nan"),
+        "hgbc_categorical": lambda: (HGBC(**hgb), "diabetes_frame_class"),
+    }
+    model, data = spec[name]()
+    if data == "diabetes_frame":
+        X, y = _diabetes_frame()
+    elif data == "diabetes_frame+nan":
+        X, y = _diabetes_frame(nan_rate=0.08)
+    elif data == "diabetes_frame_class":
+        X, y = _diabetes_frame(nan_rate=0.05)
+        y = np.digitize(y, np.quantile(y, [0.33, 0.66]))
+    elif data == "diabetes_codes":
+        X, y = _data("diabetes")
+        X = np.array(X)
+        X[:, 1] = (X[:, 1] > 0).astype(float)  # 'sex' as category codes 0.0 / 1.0
+    elif data.endswith("+nan"):
+        X, y = _data(data[:-4])
+        X = _with_nan(X, 0.1, seed=3)
+    else:
+        X, y = _data(data)
+    model.fit(X, y)
+    task = "classification" if hasattr(model, "classes_") else "regression"
+    return Case(name, model, X, _rows(X), task)
+
+
+CASES = [
+    "gbr_squared_error", "gbr_absolute_error", "gbr_huber", "gbr_quantile", "gbr_init_zero",
+    "gbr_init_dummy_median", "gbr_subsample", "gbc_binary", "gbc_multiclass", "gbc_wine",
+    "gbc_exponential", "hgbr_squared_error", "hgbr_absolute_error", "hgbr_gamma", "hgbr_poisson",
+    "hgbr_quantile", "hgbr_nan", "hgbr_categorical", "hgbr_categorical_nan", "hgbr_categorical_codes",
+    "hgbc_binary", "hgbc_multiclass", "hgbc_nan", "hgbc_multiclass_nan", "hgbc_categorical",
+]
+
+
+@functools.lru_cache(maxsize=None)
+def fitted(name: str) -> Case:
+    """The fitted case ``name`` (cached for the test session)."""
+    return _build(name)
+
+
+def exported(name: str, tmp_dir: Optional[str] = None):
+    """(case, ensemble, artefact bytes) for ``name``."""
+    from boxwood.export import build
+    from boxwood.writers.json_artefact import to_bytes
+
+    case = fitted(name)
+    ensemble = build(case.model)
+    return case, ensemble, to_bytes(ensemble)
