@@ -1,0 +1,173 @@
+"""Conformance suite: every supported estimator x task x option, scored by the device
+scorer, against scikit-learn's own predictions on the same float64 inputs.
+
+Outside reference: scikit-learn 1.x ``decision_function`` / ``predict`` /
+``predict_proba`` of the fitted source model (the numbers a user sees on the
+workstation). Rows: the open data set the case was fitted on (tests/zoo.py names
+each source), plus probes at every split threshold and one float step either side
+(float64 steps, and float32 steps for models that compare in float32), NaN in each
+feature where the model accepts it, and each known plus one unseen category.
+
+Stated bounds, checked here:
+- raw scores: bit-identical (same float64 additions in the same order);
+- probabilities and exp-transformed predictions: within PROBA_ULPS units in the last
+  place (libm's exp may differ from numpy's vectorised exp by an ulp, then one
+  division; measured here: at most 2);
+- predicted labels: identical.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+import boxwood_runtime
+from boxwood.source import SourceModel
+from boxwood_runtime.scorer import ulp_distance
+
+import zoo
+
+PROBA_ULPS = 4
+MIN_ROWS = 1000
+
+
+def probe_rows(case, ensemble, limit=4000):
+    """Data rows plus threshold, NaN and category probes; at least MIN_ROWS rows."""
+    base_rows = case.rows
+    rows = [list(r) for r in base_rows]
+    probes = []
+    seen = set()
+    for t in ensemble.trees:
+        for i in range(t.n_nodes):
+            f = t.feature[i]
+            if f < 0 or t.left_categories[i] is not None:
+                continue
+            thr = t.threshold[i]
+            if not math.isfinite(thr) or (f, thr) in seen:
+                continue
+            seen.add((f, thr))
+            values = [thr, float(np.nextafter(thr, -np.inf)), float(np.nextafter(thr, np.inf))]
+            if ensemble.compare_precision == "float32":
+                t32 = np.float32(thr)
+                values += [float(t32), float(np.nextafter(t32, np.float32(-np.inf))),
+                           float(np.nextafter(t32, np.float32(np.inf)))]
+            for v in values:
+                probes.append((f, v))
+    for j, feat in enumerate(ensemble.features):
+        if ensemble.missing_values == "route":
+            probes.append((j, None))
+        if feat.is_categorical:
+            probes.extend((j, c) for c in feat.categories)
+    for n, (f, v) in enumerate(probes):
+        row = list(base_rows[n % len(base_rows)])
+        row[f] = v
+        rows.append(row)
+    n = 0
+    while len(rows) < MIN_ROWS:  # small data sets: pad with more probe variations
+        f, v = probes[n % len(probes)]
+        row = list(base_rows[(n * 7 + 3) % len(base_rows)])
+        row[f] = v
+        rows.append(row)
+        n += 1
+    return rows[:max(limit, MIN_ROWS)]
+
+
+@pytest.fixture(scope="module", params=zoo.CASES)
+def exported(request):
+    case, ensemble, data = zoo.exported(request.param)
+    model = boxwood_runtime.load(data)
+    rows = probe_rows(case, ensemble)
+    return case, ensemble, model, rows, SourceModel(case.model, ensemble)
+
+
+def test_raw_scores_bit_identical(exported):
+    case, ensemble, model, rows, source = exported
+    assert len(rows) >= MIN_ROWS
+    want = source.raw(rows)
+    got = np.array([model.raw_scores(model.prepare(r, i)) for i, r in enumerate(rows)])
+    assert got.shape == want.shape
+    mismatch = np.flatnonzero(np.any(got != want, axis=1))
+    assert mismatch.size == 0, "row %d: device %r, scikit-learn %r" % (
+        mismatch[0], got[mismatch[0]], want[mismatch[0]])
+
+
+def test_public_methods_match_sklearn(exported):
+    case, ensemble, model, rows, source = exported
+    X = source.matrix(rows)
+    if case.task == "classification":
+        assert model.predict(rows) == list(case.model.predict(X))
+        want = case.model.predict_proba(X)
+        got = np.array(model.predict_proba(rows))
+        worst = max(ulp_distance(float(a), float(b)) for a, b in zip(got.ravel(), want.ravel()))
+        assert worst <= PROBA_ULPS
+        df = np.asarray(case.model.decision_function(X))
+        assert np.array_equal(np.array(model.decision_function(rows)), df)
+    else:
+        want = case.model.predict(X)
+        got = np.array(model.predict(rows))
+        if ensemble.post_transform == "identity":
+            assert np.array_equal(got, want)
+        else:
+            worst = max(ulp_distance(float(a), float(b)) for a, b in zip(got, want))
+            assert worst <= PROBA_ULPS
+
+
+def test_probes_cross_every_threshold(exported):
+    """The probe set is meaningful: for each numeric split, rows land on both sides."""
+    case, ensemble, model, rows, source = exported
+    checked = 0
+    for t in ensemble.trees[:5]:
+        for i in range(t.n_nodes):
+            f = t.feature[i]
+            if f < 0 or t.left_categories[i] is not None or not math.isfinite(t.threshold[i]):
+                continue
+            xs = [model.prepare(r)[f] for r in rows]
+            assert any(x <= t.threshold[i] for x in xs) and any(x > t.threshold[i] for x in xs)
+            checked += 1
+    assert checked > 0
+
+
+def test_single_record_forms_agree(exported):
+    """A dict record, a list record and a batch give the same numbers."""
+    case, ensemble, model, rows, source = exported
+    names = model.feature_names
+    for r in rows[:20]:
+        as_dict = dict(zip(names, r))
+        assert model.decision_function(as_dict) == model.decision_function(r)
+    assert model.decision_function(rows[:20]) == [model.decision_function(r) for r in rows[:20]]
+
+
+def test_unseen_category_follows_source_as_missing():
+    """scikit-learn's histogram models route an unseen category like a missing value
+    (HistGradientBoosting docs, "Categorical Features Support"); the scorer does the
+    same when asked to, and refuses it by default."""
+    case, ensemble, data = zoo.exported("hgbr_categorical_nan")
+    strict = boxwood_runtime.load(data)
+    lenient = boxwood_runtime.load(data, unknown_category="as_missing")
+    j = strict.feature_names.index("bmi_band")
+    row = list(case.rows[0])
+    row[j] = "not-a-band"
+    with pytest.raises(boxwood_runtime.RecordError) as err:
+        strict.predict(row)
+    assert "bmi_band" in str(err.value) and "not-a-band" in str(err.value)
+    want = case.model.predict(SourceModel(case.model, ensemble).matrix([row]))
+    assert lenient.predict(row) == want[0]
+    missing = list(row)
+    missing[j] = None
+    assert lenient.predict(row) == strict.predict(missing)
+
+
+def test_categorical_cases_use_categorical_splits():
+    """The categorical zoo cases really exercise set-membership splits."""
+    for name in ("hgbr_categorical", "hgbr_categorical_nan", "hgbr_categorical_codes", "hgbc_categorical"):
+        _, ensemble, _ = zoo.exported(name)
+        assert any(c is not None for t in ensemble.trees for c in t.left_categories), name
+
+
+def test_missing_cases_route_both_ways():
+    """The NaN zoo cases send missing values left at some nodes and right at others."""
+    for name in ("hgbr_nan", "hgbc_nan"):
+        _, ensemble, _ = zoo.exported(name)
+        flags = {t.missing_left[i] for t in ensemble.trees for i in range(t.n_nodes) if t.feature[i] >= 0}
+        assert flags == {True, False}, name
