@@ -28,6 +28,7 @@ class Case:
     X: Any  # what the model was fitted on (ndarray or DataFrame)
     rows: List[List[Any]]  # the same rows in feature order, None for missing
     task: str
+    y: Any = None  # the training targets
 
 
 def _rows(X: Any) -> List[List[Any]]:
@@ -144,7 +145,7 @@ def _build(name: str) -> Case:
         X, y = _data(data)
     model.fit(X, y)
     task = "classification" if hasattr(model, "classes_") else "regression"
-    return Case(name, model, X, _rows(X), task)
+    return Case(name, model, X, _rows(X), task, np.asarray(y))
 
 
 CASES = [
