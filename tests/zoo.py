@@ -163,8 +163,9 @@ def fitted(name: str) -> Case:
     return _build(name)
 
 
-def exported(name: str, tmp_dir: Optional[str] = None):
-    """(case, ensemble, artefact bytes) for ``name``."""
+@functools.lru_cache(maxsize=None)
+def exported(name: str):
+    """(case, ensemble, artefact bytes) for ``name`` (cached: do not mutate them)."""
     from boxwood.export import build
     from boxwood.writers.json_artefact import to_bytes
 
