@@ -178,6 +178,13 @@ class Ensemble:
                 _one_of("binary_rule", self.binary_rule, BINARY_RULES)
             elif k != len(self.classes):
                 raise ModelError("%d classes but %d raw outputs" % (len(self.classes), k))
+        else:
+            if self.classes is not None:
+                raise ModelError("a regressor carries no class labels")
+        if self.binary_rule is not None and not (self.classes and len(self.classes) == 2):
+            raise ModelError("binary_rule belongs to binary classifiers only")
+        if self.post_transform == "softmax" and k < 2:
+            raise ModelError("softmax needs two or more outputs")
         if self.output_names and len(self.output_names) != k:
             raise ModelError("%d output names for %d outputs" % (len(self.output_names), k))
         for index, tree in enumerate(self.trees):
@@ -212,6 +219,8 @@ def _check_tree(tree: Tree, index: int, features: List[Feature], n_outputs: int)
             if not math.isfinite(tree.value[node]):
                 raise ModelError("%s: leaf %d value is not finite" % (where, node))
             continue
+        if tree.value[node] != 0.0:
+            raise ModelError("%s: split node %d carries a value (only leaves do)" % (where, node))
         if not 0 <= f < len(features):
             raise ModelError("%s: node %d splits on feature %d, out of range" % (where, node, f))
         cats = tree.left_categories[node]

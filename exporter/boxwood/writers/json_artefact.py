@@ -86,7 +86,7 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
             "base_values": [number(v) for v in ensemble.base_values],
             "trees": trees,
         },
-        "provenance": ensemble.provenance,
+        "provenance": _provenance(ensemble.provenance),
     }
     ref = ensemble.reference
     if ref is not None:
@@ -96,6 +96,16 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
             "transformed": [[number(v) for v in r] for r in ref.transformed],
         }
     return doc
+
+
+def _provenance(p: Dict[str, Any]) -> Dict[str, Any]:
+    """Provenance with the three parts the schema requires, for hand-built ensembles too."""
+    from .. import __version__
+
+    versions = dict(p.get("versions") or {})
+    versions.setdefault("boxwood", __version__)
+    return {"estimator": p.get("estimator", "unknown"), "parameters": dict(p.get("parameters") or {}),
+            "versions": versions}
 
 
 def to_bytes(ensemble: Ensemble) -> bytes:

@@ -1,0 +1,1 @@
+"""JSON Schemas of the files boxwood writes (installed as the package boxwood.schemas)."""
