@@ -402,7 +402,10 @@ class Model:
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise RecordError(row, self.feature_names[i], "expected a number, got %s %r"
                               % (type(v).__name__, v))
-        v = float(v)
+        try:
+            v = float(v)
+        except OverflowError:  # an integer too large for a float
+            raise RecordError(row, self.feature_names[i], "%d is out of the float64 range" % v)
         if v != v:
             return self._missing(i, row)
         if (v == _INF or v == -_INF) and not self.accepts_infinity:
@@ -446,6 +449,8 @@ class Model:
                 record[name] = text
                 continue
             try:
+                if "_" in text:  # float() takes "1_000"; a CSV cell should not
+                    raise ValueError(text)
                 record[name] = float(text)
             except ValueError:
                 if cats is None:
@@ -500,13 +505,13 @@ class Model:
 
     def predict(self, records):
         """Predicted value (regression) or class label (classification) per record."""
-        return self._apply(records, self._predict_out)
+        return self._apply(records, self.predict_from_raw)
 
     def predict_proba(self, records):
         """Class probabilities per record, in the order of ``classes`` (classifiers only)."""
         if self.task != "classification":
             raise TypeError("predict_proba is for classifiers; this model does %s" % self.task)
-        return self._apply(records, self._proba_out)
+        return self._apply(records, self.proba_from_raw)
 
     def transform_raw(self, raw):
         """Apply the post-transform to one list of raw scores."""
@@ -515,13 +520,15 @@ class Model:
     def _raw_out(self, raw):
         return raw[0] if self.n_outputs == 1 else raw
 
-    def _predict_out(self, raw):
+    def predict_from_raw(self, raw):
+        """The prediction (value or class label) for one list of raw scores."""
         if self.task == "regression":
             out = self.transform_raw(raw)
             return out[0] if self.n_outputs == 1 else out
         return self.classes[self.class_index(raw)]
 
-    def _proba_out(self, raw):
+    def proba_from_raw(self, raw):
+        """Class probabilities (all classes, in ``classes`` order) for one list of raw scores."""
         p = self.transform_raw(raw)
         return [1.0 - p[0], p[0]] if self.n_outputs == 1 else p
 
