@@ -1,0 +1,342 @@
+"""boxwood batch scorer: score many rows at once with numpy (for gateways that have it).
+
+The scoring core, :mod:`boxwood_runtime.scorer`, never imports this module; this
+module imports the core and builds on a model it has already loaded and validated:
+
+    from boxwood_runtime import load
+    from boxwood_runtime.batch import BatchModel
+    batch = BatchModel(load("model.json"))
+    batch.predict(X)            # X: ndarray (n, n_features), or a list of records
+
+How it evaluates. The trees are read from the loaded model's nested tuples (the
+same values the pure-Python scorer walks) into flat node arrays, numbered so that
+the two children of a split sit next to each other: a step down the tree is then
+``node = first_child[node] + goes_right``. Each tree is evaluated for all rows of a
+block at once, one depth level per numpy step; a leaf is its own child and never
+goes right, so extra steps leave finished rows where they are. A missing value
+(NaN) goes right where the node's ``missing_left`` is false; at a categorical split
+a category code goes left when it is set in the node's row of a boolean look-up
+table of shape (categorical splits, categories).
+
+Exactness. Raw scores are built exactly as the pure-Python scorer builds them: the
+base value first, then the leaf value of each tree of that output, in tree order,
+added in float64 (for ``combine == "mean"``: the leaves summed from 0.0, divided by
+the tree count, added to the base value). They are therefore bit-identical to
+:meth:`boxwood_runtime.scorer.Model.raw_scores` and, where the source works in
+float64, to scikit-learn.
+
+Post-transforms use numpy: ``np.exp``; logistic as ``1 / (1 + np.exp(-x))``;
+softmax as max-subtract, ``np.exp``, a left-to-right sum, divide. They differ from
+the pure-Python scorer only where ``np.exp`` and ``math.exp`` round differently.
+Measured on the rows tests/test_batch.py scores (45,927 rows of the zoo: data, threshold
+probes, missing values; numpy 2.4.6, scikit-learn 1.9.1, Python 3.11, x86-64):
+
+- raw scores and identity outputs: bit-identical to the scorer and scikit-learn;
+- exp and softmax: bit-identical to scikit-learn (which also uses ``np.exp``),
+  at most 2 ulp from the pure-Python scorer (``math.exp``);
+- logistic: at most 2 ulp from both (scikit-learn uses ``scipy.special.expit``,
+  which rounds like ``math.exp``);
+- binary classifiers' negative-class column is ``1 - p`` (as in scikit-learn), so
+  there the bound is absolute: 2 ulp of 1.0.
+
+Another numpy build (another ``np.exp``) may round differently; the tests enforce
+``TRANSFORM_ULPS = 4``, half the core's self-check tolerance ``SELF_CHECK_ULPS = 8``.
+"""
+try:
+    import numpy as np
+except ImportError as _exc:  # pragma: no cover - exercised in a subprocess test
+    raise ImportError(
+        "boxwood_runtime.batch needs numpy, which is not installed here; the standard-library "
+        "scorer (boxwood_runtime.scorer / boxwood_runtime.load) works without it"
+    ) from _exc
+
+from .scorer import Model, RecordError
+
+# Transformed outputs are within this many ulps of the pure-Python scorer and of
+# scikit-learn (measured: 2; see the module docstring).
+TRANSFORM_ULPS = 4
+# Rows evaluated together: big enough that numpy's per-call overhead is small,
+# small enough that a block's working arrays stay in the CPU cache.
+BLOCK_ROWS = 16384
+
+
+class BatchModel:
+    """Vectorised scorer for a :class:`boxwood_runtime.scorer.Model`.
+
+    Methods mirror the model's (and scikit-learn's) names and return ndarrays
+    shaped like scikit-learn's: ``decision_function`` (n,) for one output or
+    (n, K); ``predict`` (n,); ``predict_proba`` (n, K) with K the class count.
+    """
+
+    def __init__(self, model):
+        if not isinstance(model, Model):
+            raise TypeError("BatchModel needs a loaded boxwood_runtime.scorer.Model, got %s"
+                            % type(model).__name__)
+        self.model = model
+        self.n_features = model.n_features
+        self.feature_names = list(model.feature_names)
+        self._n_categories = [None if c is None else len(c) for c in model.categories]
+        self._numeric_cols = np.array([c is None for c in model.categories], dtype=bool)
+        self._build_nodes()
+
+    # -- layout ----------------------------------------------------------------------
+    def _build_nodes(self):
+        """Flatten the model's trees into node arrays (children of a split adjacent)."""
+        feature, threshold, first, missing_right, value, cat_row = [], [], [], [], [], []
+        lut_rows = []
+        width = max([n for n in self._n_categories if n] or [1])
+        inf = float("inf")
+
+        def add(node):
+            i = len(feature)
+            if node.__class__ is tuple:
+                f, t, _, _, m = node
+                feature.append(f)
+                if m is True or m is False:  # numeric split
+                    threshold.append(t)
+                    missing_right.append(not m)
+                    cat_row.append(-1)
+                else:  # categorical split: threshold +inf, so only the table decides
+                    threshold.append(inf)
+                    missing_right.append(not m[0])
+                    cat_row.append(len(lut_rows))
+                    row = [False] * width
+                    for code in m[1]:
+                        row[code] = True
+                    lut_rows.append(row)
+            else:  # a leaf: its own child; +inf threshold, so it never goes right
+                feature.append(0)
+                threshold.append(inf)
+                missing_right.append(False)
+                cat_row.append(-1)
+            first.append(i)
+            value.append(node if node.__class__ is not tuple else 0.0)
+            return i
+
+        # plan: per output, (base value, [(root index, depth), ...]) in tree order
+        self._plan = []
+        for j, roots in enumerate(self.model.trees_per_output):
+            trees = []
+            for root in roots:
+                start = add(root)
+                level, depth = [(root, start)], 0
+                while True:  # breadth first: a split's two children are appended together
+                    nxt = []
+                    for node, i in level:
+                        if node.__class__ is tuple:
+                            first[i] = len(feature)
+                            nxt.append((node[2], add(node[2])))
+                            nxt.append((node[3], add(node[3])))
+                    if not nxt:
+                        break
+                    depth += 1
+                    level = nxt
+                trees.append((start, depth))
+            self._plan.append((self.model.base_values[j], trees))
+        self._feature = np.array(feature, dtype=np.intp)
+        self._threshold = np.array(threshold, dtype=np.float64)
+        self._first = np.array(first, dtype=np.intp)
+        self._missing_right = np.array(missing_right, dtype=bool)
+        self._value = np.array(value, dtype=np.float64)
+        self._cat_row = np.array(cat_row, dtype=np.intp)
+        self._lut = np.array(lut_rows, dtype=bool).reshape(len(lut_rows), width)
+        self._has_cat_splits = bool(lut_rows)
+
+    # -- input -----------------------------------------------------------------------
+    def prepare(self, records):
+        """Validate input and return the float64 matrix (n, n_features) the trees compare.
+
+        ``records`` is either a numeric ndarray of shape (n, n_features) whose
+        categorical columns hold category codes (0 .. number of categories - 1) and
+        NaN for missing, or a sequence of records (dicts or sequences, one dict alone
+        is one record) that are passed one by one to ``Model.prepare``, so errors are
+        the same as the pure-Python scorer's. Raises RecordError naming the row and
+        field of the first bad value.
+        """
+        if isinstance(records, np.ndarray) and records.dtype.kind in "fiu":
+            return self._prepare_array(records)
+        if isinstance(records, np.ndarray):
+            if records.dtype.kind != "O":
+                raise RecordError(None, None, "expected a numeric or object array, got dtype %s"
+                                  % records.dtype)
+            records = records.tolist()
+        if isinstance(records, dict):
+            records = [records]
+        if not isinstance(records, (list, tuple)):
+            raise RecordError(None, None, "expected an ndarray or a list of records, got %s"
+                              % type(records).__name__)
+        prepare = self.model.prepare
+        rows = [prepare(r, i) for i, r in enumerate(records)]
+        return np.array(rows, dtype=np.float64).reshape(len(rows), self.n_features)
+
+    def _prepare_array(self, X):
+        m = self.model
+        if X.ndim != 2 or X.shape[1] != self.n_features:
+            raise RecordError(None, None, "the array has shape %s, the model takes (n, %d) columns (%s)"
+                              % (X.shape, self.n_features, ", ".join(self.feature_names)))
+        X = np.array(X, dtype=np.float64)  # a copy: the caller's array is never changed
+        nan = np.isnan(X)
+        bad = np.zeros(X.shape, dtype=bool)
+        reason = np.zeros(X.shape, dtype=np.int8)  # 1 missing, 2 infinity, 3 bad code
+        num = self._numeric_cols
+        if not m.accepts_infinity:
+            inf = np.isinf(X) & num
+            bad |= inf
+            reason[inf] = 2
+        for j, n_cats in enumerate(self._n_categories):
+            if n_cats is None:
+                continue
+            col = X[:, j]
+            wrong = ~nan[:, j] & ~((col >= 0) & (col < n_cats) & (col == np.floor(col)))
+            if not wrong.any():
+                continue
+            if m.unknown_category == "error":
+                bad[:, j] |= wrong
+                reason[wrong, j] = 3
+            else:  # as scikit-learn does: an unknown category is a missing value
+                col[wrong] = np.nan
+                nan[:, j] |= wrong
+        if m.missing_values == "reject":
+            bad |= nan & (reason == 0)
+            reason[nan & (reason == 0)] = 1
+        overflow = None
+        if m.compare_precision == "float32":
+            with np.errstate(over="ignore"):
+                X32 = X.astype(np.float32)
+            overflow = np.isinf(X32) & np.isfinite(X)
+        if bad.any() or (overflow is not None and overflow.any()):
+            self._raise_first(X, bad, reason, overflow)
+        if overflow is not None:
+            X = X32.astype(np.float64)
+        return X
+
+    def _raise_first(self, X, bad, reason, overflow):
+        """Raise the error the per-record scorer raises: the first bad row, in it the first
+        bad value, and only then a value outside the float32 range."""
+        any_row = bad.any(axis=1)
+        if overflow is not None:
+            any_row = any_row | overflow.any(axis=1)
+        r = int(np.argmax(any_row))
+        if bad[r].any():
+            c = int(np.argmax(bad[r]))
+            name = self.feature_names[c]
+            why = int(reason[r, c])
+            if why == 1:
+                raise RecordError(r, name, "the value is missing, and this model does not accept missing values")
+            if why == 2:
+                raise RecordError(r, name, "infinity is not accepted by this model")
+            raise RecordError(r, name, "category code %r is not one of 0..%d"
+                              % (float(X[r, c]), self._n_categories[c] - 1))
+        c = int(np.argmax(overflow[r]))
+        raise RecordError(r, self.feature_names[c],
+                          "%r is outside the float32 range this model compares in" % (float(X[r, c]),))
+
+    # -- evaluation ------------------------------------------------------------------
+    def raw_scores(self, X):
+        """Raw scores, shape (n, n_outputs), for a matrix from :meth:`prepare`."""
+        n = X.shape[0]
+        out = np.empty((n, len(self._plan)), dtype=np.float64)
+        for start in range(0, n, BLOCK_ROWS):
+            block = np.ascontiguousarray(X[start:start + BLOCK_ROWS])
+            out[start:start + block.shape[0]] = self._block(block)
+        return out
+
+    def _block(self, X):
+        n, width = X.shape
+        flat = X.ravel()
+        row_base = np.arange(n, dtype=np.intp) * width
+        has_nan = bool(np.isnan(X).any())
+        feature, threshold, first = self._feature, self._threshold, self._first
+        value, missing_right = self._value, self._missing_right
+        mean = self.model.combine == "mean"
+        out = np.empty((n, len(self._plan)), dtype=np.float64)
+        for j, (base, trees) in enumerate(self._plan):
+            acc = np.zeros(n) if mean else np.full(n, base)
+            for root, depth in trees:
+                if depth == 0:  # a tree that is a single leaf
+                    acc += value[root]
+                    continue
+                # The root level needs no gathers: one column against one threshold.
+                v = X[:, feature[root]]
+                right = v > threshold[root]
+                if has_nan:
+                    right |= np.isnan(v) & missing_right[root]
+                if self._has_cat_splits and self._cat_row[root] >= 0:
+                    self._categorical(np.full(n, root, dtype=np.intp), v, right)
+                node = right.astype(np.intp)
+                node += first[root]
+                for _ in range(depth - 1):
+                    v = flat.take(row_base + feature.take(node))
+                    right = v > threshold.take(node)  # NaN > t is False: handled next
+                    if has_nan:
+                        missing = np.isnan(v)
+                        right |= missing & missing_right.take(node)
+                    if self._has_cat_splits:
+                        self._categorical(node, v, right)
+                    node = first.take(node) + right
+                acc += value.take(node)
+            if mean:
+                acc = base + acc / len(trees) if trees else np.full(n, base)
+            out[:, j] = acc
+        return out
+
+    def _categorical(self, node, v, right):
+        """At categorical splits, send non-missing codes right unless set in the table."""
+        table_row = self._cat_row.take(node)
+        at = (table_row >= 0) & ~np.isnan(v)
+        if at.any():
+            right[at] = ~self._lut[table_row[at], v[at].astype(np.intp)]
+
+    # -- the public methods ----------------------------------------------------------
+    def decision_function(self, X):
+        """Raw scores: shape (n,) for one output, (n, K) for K outputs."""
+        raw = self.raw_scores(self.prepare(X))
+        return raw[:, 0] if raw.shape[1] == 1 else raw
+
+    def predict(self, X):
+        """Predictions (regression, shape (n,) or (n, K)) or class labels (shape (n,))."""
+        m = self.model
+        raw = self.raw_scores(self.prepare(X))
+        if m.task == "regression":
+            out = transform(m.post_transform, raw)
+            return out[:, 0] if out.shape[1] == 1 else out
+        return np.asarray(m.classes)[self.class_index(raw)]
+
+    def predict_proba(self, X):
+        """Class probabilities, shape (n, number of classes), in the order of ``classes``."""
+        m = self.model
+        if m.task != "classification":
+            raise TypeError("predict_proba is for classifiers; this model does %s" % m.task)
+        p = transform(m.post_transform, self.raw_scores(self.prepare(X)))
+        if p.shape[1] == 1:
+            return np.column_stack([1.0 - p[:, 0], p[:, 0]])
+        return p
+
+    def class_index(self, raw):
+        """Index into ``classes`` of the predicted class for raw scores (n, n_outputs)."""
+        m = self.model
+        if raw.shape[1] == 1:
+            positive = raw[:, 0] > 0.0 if m.binary_rule == "raw_gt_0" else raw[:, 0] >= 0.0
+            return positive.astype(np.intp)
+        return np.argmax(raw, axis=1)  # the first of equal maxima, as the scorer's loop
+
+
+def transform(name, raw):
+    """Apply a post-transform to raw scores of shape (n, K); return a new (n, K) array."""
+    raw = np.asarray(raw, dtype=np.float64)
+    with np.errstate(over="ignore"):
+        if name == "identity":
+            return raw.copy()
+        if name == "exp":
+            return np.exp(raw)
+        if name == "logistic":
+            return 1.0 / (1.0 + np.exp(-raw))
+        if name == "logistic_double":
+            return 1.0 / (1.0 + np.exp(-(2.0 * raw)))
+        if name == "softmax":
+            e = np.exp(raw - raw.max(axis=1, keepdims=True))
+            total = e[:, 0].copy()
+            for k in range(1, e.shape[1]):  # left to right, as the scorer adds
+                total += e[:, k]
+            return e / total[:, None]
+    raise ValueError("unknown post_transform %r" % (name,))
