@@ -419,3 +419,36 @@ def test_core_runs_without_numpy_and_batch_says_it_needs_it(tmp_path):
     # the stdlib scorer's prediction is scikit-learn's, bit for bit
     assert out["prediction"] == float(case.model.predict(np.array([row]))[0])
     assert "needs numpy" in out["batch"]
+
+
+# --------------------------------------------------------------------------- trees, forests, AdaBoost, isolation
+@pytest.mark.parametrize("name", zoo.FOREST_CASES)
+def test_forest_kinds_match_sklearn_and_scorer(name):
+    """Trees, forests, AdaBoost (SAMME) and isolation forests: batch raw scores are
+    bit-identical to the pure-Python scorer's; decision values, labels and
+    probabilities match scikit-learn's own (decision values bit for bit, isolation
+    forest scores too since both use numpy's power; probabilities within
+    TRANSFORM_ULPS)."""
+    from boxwood.source import SourceModel
+
+    from test_conformance import probe_rows as ir_probe_rows  # probes from the exported trees
+
+    case, ensemble, data = zoo.exported(name)
+    model = load(data)
+    rows = ir_probe_rows(case, ensemble)
+    source = SourceModel(case.model, ensemble)
+    X = source.matrix(rows)
+    batch = BatchModel(model)
+    raw = batch.raw_scores(batch.prepare(rows))
+    scorer = np.array([model.raw_scores(model.prepare(r, i)) for i, r in enumerate(rows)])
+    assert same_bits(raw, scorer)
+    if hasattr(case.model, "decision_function"):
+        assert same_bits(batch.decision_function(rows), np.asarray(case.model.decision_function(X), dtype=np.float64))
+    if case.task == "outlier_detection":
+        assert same_bits(batch.score_samples(rows), case.model.score_samples(X))
+    if case.task in ("classification", "outlier_detection"):
+        np.testing.assert_array_equal(batch.predict(rows), case.model.predict(X))
+    if case.task == "classification":
+        assert ulps(batch.predict_proba(rows), case.model.predict_proba(X)).max() <= TRANSFORM_ULPS
+    if case.task == "regression":
+        assert same_bits(batch.predict(rows), np.asarray(case.model.predict(X), dtype=np.float64))

@@ -9,10 +9,15 @@ each source), plus probes at every split threshold and one float step either sid
 feature where the model accepts it, and each known plus one unseen category.
 
 Stated bounds, checked here:
-- raw scores: bit-identical (same float64 additions in the same order);
+- raw scores: bit-identical (same float64 additions in the same order); for forests
+  and trees the averaged class probabilities or predictions, for AdaBoost its
+  decision values, for isolation forests the sum of path lengths: all bit-identical;
 - probabilities and exp-transformed predictions: within PROBA_ULPS units in the last
   place (libm's exp may differ from numpy's vectorised exp by an ulp, then one
   division; measured here: at most 2);
+- isolation forests: score_samples within PROBA_ULPS ulps (numpy's vectorised power
+  differs from libm's pow in the last place), decision_function within the same
+  absolute error, predict (-1/1) identical;
 - predicted labels: identical.
 """
 from __future__ import annotations
@@ -73,7 +78,7 @@ def probe_rows(case, ensemble, limit=4000):
     return rows[:max(limit, MIN_ROWS)]
 
 
-@pytest.fixture(scope="module", params=zoo.CASES)
+@pytest.fixture(scope="module", params=zoo.ALL_CASES)
 def exported(request):
     case, ensemble, data = zoo.exported(request.param)
     model = boxwood_runtime.load(data)
@@ -85,7 +90,7 @@ def test_raw_scores_bit_identical(exported):
     case, ensemble, model, rows, source = exported
     assert len(rows) >= MIN_ROWS
     want = source.raw(rows)
-    got = np.array([model.raw_scores(model.prepare(r, i)) for i, r in enumerate(rows)])
+    got = np.array([model.exact_values(model.raw_scores(model.prepare(r, i))) for i, r in enumerate(rows)])
     assert got.shape == want.shape
     mismatch = np.flatnonzero(np.any(got != want, axis=1))
     assert mismatch.size == 0, "row %d: device %r, scikit-learn %r" % (
@@ -95,14 +100,23 @@ def test_raw_scores_bit_identical(exported):
 def test_public_methods_match_sklearn(exported):
     case, ensemble, model, rows, source = exported
     X = source.matrix(rows)
-    if case.task == "classification":
+    if case.task == "outlier_detection":
+        assert model.predict(rows) == list(case.model.predict(X))
+        scores = model.score_samples(rows)
+        want = case.model.score_samples(X)
+        assert max(ulp_distance(float(a), float(b)) for a, b in zip(scores, want)) <= PROBA_ULPS
+        # |score| <= 1, so PROBA_ULPS ulps of the score are at most PROBA_ULPS * 2**-53 absolute
+        gap = np.abs(np.array(model.decision_function(rows)) - case.model.decision_function(X))
+        assert gap.max() <= PROBA_ULPS * 2.0 ** -53
+    elif case.task == "classification":
         assert model.predict(rows) == list(case.model.predict(X))
         want = case.model.predict_proba(X)
         got = np.array(model.predict_proba(rows))
         worst = max(ulp_distance(float(a), float(b)) for a, b in zip(got.ravel(), want.ravel()))
         assert worst <= PROBA_ULPS
-        df = np.asarray(case.model.decision_function(X))
-        assert np.array_equal(np.array(model.decision_function(rows)), df)
+        if hasattr(case.model, "decision_function"):
+            df = np.asarray(case.model.decision_function(X))
+            assert np.array_equal(np.array(model.decision_function(rows)), df)
     else:
         want = case.model.predict(X)
         got = np.array(model.predict(rows))

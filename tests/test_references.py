@@ -146,3 +146,70 @@ def test_learning_rate_applied_to_leaves():
     for i in leaves:
         assert exported.value[i] == lr * float(tree.value[i, 0, 0])
     assert len(ensemble.trees) == case.model.n_estimators_
+
+
+def _harmonic(n):
+    return math.fsum(1.0 / i for i in range(1, n + 1))
+
+
+def test_isolation_forest_average_path_length_by_hand():
+    """c(n) = 2 H(n - 1) - 2 (n - 1) / n, the average path length of an unsuccessful search
+    in a binary search tree (Liu, Ting & Zhou 2008, Isolation Forest, ICDM, eq. 1), with
+    H(i) the harmonic number. scikit-learn approximates H(i) by ln(i) + Euler's constant
+    (0.5772156649..., from memory), so compare within that approximation's error, which
+    is below 1 / (2 i) (common practice: H(i) - ln(i) - gamma lies in (1/(2(i+1)), 1/(2i)))."""
+    case = zoo.fitted("iforest_subsets")
+    ensemble = build(case.model)
+    n = int(case.model.max_samples_)
+    c_exact = 2.0 * _harmonic(n - 1) - 2.0 * (n - 1) / n
+    denominator = ensemble.post_transform_params["denominator"]
+    per_tree = denominator / len(case.model.estimators_)
+    assert abs(per_tree - c_exact) <= 2.0 * (1.0 / (2 * (n - 1)))
+    # and the score formula s = 2 ** (-E[h(x)] / c(n)) (eq. 2) on one row, by hand
+    import boxwood_runtime
+    from boxwood.writers.json_artefact import to_bytes
+
+    device = boxwood_runtime.load(to_bytes(ensemble))
+    row = case.rows[0]
+    total_path = device.raw_scores(device.prepare(row))[0]
+    mean_path = total_path / len(case.model.estimators_)
+    assert _close(device.score_samples(row), -(2.0 ** (-mean_path / per_tree)), ulps=16)
+
+
+def test_forest_is_the_mean_of_its_trees_by_hand():
+    """Breiman (2001), Random Forests, Machine Learning 45(1): the forest's regression
+    prediction is the average of its trees' predictions. Average scikit-learn's own
+    per-tree predictions by hand and compare with the device."""
+    import boxwood_runtime
+
+    case, _, data = zoo.exported("rfr")
+    device = boxwood_runtime.load(data)
+    X = np.asarray(case.X, dtype=np.float64)[:50]
+    per_tree = [est.predict(X) for est in case.model.estimators_]
+    for i in range(len(X)):
+        by_hand = math.fsum(p[i] for p in per_tree) / len(per_tree)
+        assert _close(device.predict(case.rows[i]), by_hand)
+
+
+def test_samme_class_weights_by_hand():
+    """SAMME (Zhu, Zou, Rosset & Hastie 2009, Multi-class AdaBoost, Algorithm 2): tree m
+    gets weight alpha_m = learning_rate * (log((1 - err_m) / err_m) + log(K - 1)), and a
+    record's class scores are sum_m alpha_m [tree m votes k] (scikit-learn's symmetric
+    form subtracts alpha_m / (K - 1) for the other classes, which shifts all classes
+    equally). Check the weights from the recorded errors and the device's vote by hand."""
+    import boxwood_runtime
+
+    case, ensemble, data = zoo.exported("ada_multiclass")
+    model = case.model
+    K = len(model.classes_)
+    for err, alpha in zip(model.estimator_errors_, model.estimator_weights_):
+        if err > 0:
+            want = model.learning_rate * (math.log((1.0 - err) / err) + math.log(K - 1.0))
+            assert _close(alpha, want)
+    device = boxwood_runtime.load(data)
+    X = np.asarray(case.X, dtype=np.float64)[:40]
+    votes = [est.predict(X) for est in model.estimators_]
+    for i in range(len(X)):
+        scores = [math.fsum(w for w, v in zip(model.estimator_weights_, votes) if v[i] == c) for c in model.classes_]
+        by_hand = model.classes_[int(np.argmax(scores))]
+        assert device.predict(case.rows[i]) == by_hand

@@ -25,7 +25,7 @@ def test_same_model_same_bytes(name):
     assert to_bytes(build(clone)) == again == data
 
 
-@pytest.mark.parametrize("name", zoo.CASES)
+@pytest.mark.parametrize("name", zoo.ALL_CASES)
 def test_file_to_hub_to_file_is_identical(name):
     _, ensemble, data = zoo.exported(name)
     back = read_file(data)

@@ -63,6 +63,9 @@ def sklearn_reference(case, select=None):
         X = X.iloc[select] if hasattr(X, "iloc") else X[select]
     if case.task == "classification":
         return [v.item() for v in case.model.predict(X)], case.model.predict_proba(X).tolist()
+    if case.task == "outlier_detection":
+        return ([int(v) for v in case.model.predict(X)],
+                np.c_[case.model.score_samples(X), case.model.decision_function(X)].tolist())
     return np.asarray(case.model.predict(X), dtype=np.float64).reshape(len(X), -1).tolist(), None
 
 
@@ -90,6 +93,12 @@ def check_against_sklearn(device, case, out_rows, text, select=None):
                     assert same_bits(got, w), (i, got, w)
                 else:
                     assert ulp_distance(got, w) <= SELF_CHECK_ULPS, (i, got, w)
+        elif case.task == "outlier_detection":
+            # score_samples within the bound; decision = score - offset, so the same
+            # absolute error (|score| <= 1: 8 ulps of 1.0 at most)
+            assert row["label"] == (str(want[i]) if text else want[i]), (i, row["label"], want[i])
+            assert ulp_distance(float(row["score"]), proba[i][0]) <= SELF_CHECK_ULPS
+            assert abs(float(row["decision"]) - proba[i][1]) <= SELF_CHECK_ULPS * 2.0 ** -52
         else:
             label = row["label"]
             assert label == (str(want[i]) if text else want[i]), (i, label, want[i])
@@ -126,7 +135,7 @@ def devices():
 
 
 # ----------------------------------------------------------------------------- the zoo
-@pytest.mark.parametrize("name", zoo.CASES)
+@pytest.mark.parametrize("name", zoo.ALL_CASES)
 def test_zoo_csv_matches_sklearn(devices, name):
     case, ensemble, device = devices(name)
     n = len(case.rows)
@@ -137,7 +146,7 @@ def test_zoo_csv_matches_sklearn(devices, name):
     check_against_sklearn(device, case, rows, text=True)
 
 
-@pytest.mark.parametrize("name", zoo.CASES)
+@pytest.mark.parametrize("name", zoo.ALL_CASES)
 def test_zoo_jsonl_matches_sklearn(devices, name):
     case, ensemble, device = devices(name)
     n = len(case.rows)

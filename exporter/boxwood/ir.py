@@ -23,13 +23,19 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional, Sequence, Tuple
 
-TASKS = ("regression", "classification")
+TASKS = ("regression", "classification", "outlier_detection")
 PRECISIONS = ("float64", "float32")
 COMBINES = ("sum", "mean")
 MISSING_POLICIES = ("route", "reject")
-# identity: raw score as is; exp: math.exp(raw); logistic: 1 / (1 + exp(-raw));
-# logistic_double: logistic(2 * raw) (exponential loss); softmax: over the outputs.
-POST_TRANSFORMS = ("identity", "exp", "logistic", "logistic_double", "softmax")
+# identity: raw score as is (for a classifier: the raw scores are the class
+# probabilities); exp: math.exp(raw); logistic: 1 / (1 + exp(-raw)); logistic_double:
+# logistic(2 * raw) (exponential loss); softmax: over the outputs; samme: AdaBoost's
+# decision raw / weight_total and its softmax probabilities; isolation: an isolation
+# forest's score -(2 ** -(raw / denominator)), decision score - offset.
+POST_TRANSFORMS = ("identity", "exp", "logistic", "logistic_double", "softmax", "samme", "isolation")
+TRANSFORM_PARAMS = {"samme": ("weight_total",), "isolation": ("denominator", "offset")}
+# Classifiers whose raw scores hold one value per class even for two classes.
+PER_CLASS_TRANSFORMS = ("identity", "softmax", "samme")
 # How a binary classifier turns its raw score into the positive class.
 BINARY_RULES = ("raw_gt_0", "raw_ge_0")
 
@@ -134,6 +140,7 @@ class Ensemble:
     binary_rule: Optional[str] = None
     output_names: List[str] = field(default_factory=list)
     accepts_infinity: bool = True
+    post_transform_params: Dict[str, float] = field(default_factory=dict)
     provenance: Dict[str, Any] = field(default_factory=dict)
     reference: Optional["Reference"] = None
 
@@ -169,20 +176,32 @@ class Ensemble:
             raise ModelError("the ensemble has no outputs (no base values)")
         if not all(isinstance(b, float) and math.isfinite(b) for b in self.base_values):
             raise ModelError("base values must be finite floats: %r" % self.base_values)
+        wanted = TRANSFORM_PARAMS.get(self.post_transform, ())
+        if sorted(self.post_transform_params) != sorted(wanted) or not all(
+                isinstance(v, float) and math.isfinite(v) for v in self.post_transform_params.values()):
+            raise ModelError("post_transform %r takes the finite float parameters %s, not %r"
+                             % (self.post_transform, list(wanted), self.post_transform_params))
         if self.task == "classification":
             if not self.classes or len(self.classes) < 2:
                 raise ModelError("a classifier needs at least two class labels")
-            if len(self.classes) == 2:
+            if len(self.classes) == 2 and self.post_transform not in PER_CLASS_TRANSFORMS:
                 if k != 1:
                     raise ModelError("a binary classifier has one raw output, not %d" % k)
                 _one_of("binary_rule", self.binary_rule, BINARY_RULES)
             elif k != len(self.classes):
                 raise ModelError("%d classes but %d raw outputs" % (len(self.classes), k))
+            _one_of("post_transform of a classifier", self.post_transform,
+                    ("identity", "logistic", "logistic_double", "softmax", "samme"))
+        elif self.task == "outlier_detection":
+            if self.post_transform != "isolation" or k != 1 or self.classes != [-1, 1]:
+                raise ModelError("an outlier detector has one raw output, the isolation "
+                                 "post-transform and the labels [-1, 1]")
         else:
             if self.classes is not None:
                 raise ModelError("a regressor carries no class labels")
-        if self.binary_rule is not None and not (self.classes and len(self.classes) == 2):
-            raise ModelError("binary_rule belongs to binary classifiers only")
+            _one_of("post_transform of a regressor", self.post_transform, ("identity", "exp"))
+        if self.binary_rule is not None and not (self.task == "classification" and k == 1):
+            raise ModelError("binary_rule belongs to binary classifiers with one raw output only")
         if self.post_transform == "softmax" and k < 2:
             raise ModelError("softmax needs two or more outputs")
         if self.output_names and len(self.output_names) != k:

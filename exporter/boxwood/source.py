@@ -37,10 +37,21 @@ class SourceModel:
         return np.array([[np.nan if v is None else v for v in r] for r in rows], dtype=np.float64)
 
     def raw(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
-        """Raw scores, shape (n_rows, n_outputs), float64."""
+        """The values the device must reproduce bit for bit, shape (n_rows, n_values),
+        float64 (the device's ``Model.exact_values``): the raw scores of boosted models
+        (``decision_function``; ``predict`` before any inverse link), the class
+        probabilities of probability-averaging classifiers (trees, forests), AdaBoost's
+        ``decision_function``, and an isolation forest's sum of path lengths (computed
+        with scikit-learn's own trees, as its ``score_samples`` does before the power)."""
         X = self.matrix(rows)
         m = self.model
-        if self.ensemble.task == "classification":
+        if self.ensemble.task == "outlier_detection":
+            from .readers.sklearn_forests import isolation_path_sums
+
+            out = isolation_path_sums(m, X)
+        elif self.ensemble.task == "classification" and self.ensemble.post_transform == "identity":
+            out = m.predict_proba(X)
+        elif self.ensemble.task == "classification":
             out = m.decision_function(X)
         elif self.ensemble.post_transform != "identity":
             out = m._raw_predict(X)  # regressors with a log link predict exp(raw)
@@ -49,12 +60,15 @@ class SourceModel:
         return np.asarray(out, dtype=np.float64).reshape(len(rows), -1)
 
     def transformed(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
-        """Post-transformed outputs, shape (n_rows, n_outputs): the prediction, or the
-        class probabilities (for a binary classifier, the positive class only)."""
+        """Post-transformed outputs, shape (n_rows, n_outputs): the prediction, the class
+        probabilities (for a binary classifier with one raw output, the positive class
+        only), or an isolation forest's ``score_samples``."""
         X = self.matrix(rows)
+        if self.ensemble.task == "outlier_detection":
+            return np.asarray(self.model.score_samples(X), dtype=np.float64).reshape(len(rows), -1)
         if self.ensemble.task == "classification":
             p = np.asarray(self.model.predict_proba(X), dtype=np.float64)
-            return p[:, 1:] if p.shape[1] == 2 else p
+            return p[:, 1:] if self.ensemble.n_outputs == 1 else p
         return np.asarray(self.model.predict(X), dtype=np.float64).reshape(len(rows), -1)
 
     def predict(self, rows: Sequence[Sequence[Any]]) -> List[Any]:

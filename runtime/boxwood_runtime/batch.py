@@ -288,10 +288,26 @@ class BatchModel:
             right[at] = ~self._lut[table_row[at], v[at].astype(np.intp)]
 
     # -- the public methods ----------------------------------------------------------
+    def decision_values(self, raw):
+        """Decision values for raw scores (n, n_outputs), as the scorer's ``decision_values``."""
+        m = self.model
+        if m.post_transform == "samme":
+            return samme_decision(raw, m.post_transform_params["weight_total"])
+        if m.post_transform == "isolation":
+            return transform("isolation", raw, m.post_transform_params) - m.post_transform_params["offset"]
+        return raw
+
     def decision_function(self, X):
-        """Raw scores: shape (n,) for one output, (n, K) for K outputs."""
-        raw = self.raw_scores(self.prepare(X))
-        return raw[:, 0] if raw.shape[1] == 1 else raw
+        """Decision values (raw scores for boosted models): shape (n,) or (n, K)."""
+        d = self.decision_values(self.raw_scores(self.prepare(X)))
+        return d[:, 0] if d.shape[1] == 1 else d
+
+    def score_samples(self, X):
+        """Isolation forests: scikit-learn's ``score_samples``, shape (n,)."""
+        m = self.model
+        if m.task != "outlier_detection":
+            raise TypeError("score_samples is for outlier detectors; this model does %s" % m.task)
+        return transform("isolation", self.raw_scores(self.prepare(X)), m.post_transform_params)[:, 0]
 
     def predict(self, X):
         """Predictions (regression, shape (n,) or (n, K)) or class labels (shape (n,))."""
@@ -307,7 +323,7 @@ class BatchModel:
         m = self.model
         if m.task != "classification":
             raise TypeError("predict_proba is for classifiers; this model does %s" % m.task)
-        p = transform(m.post_transform, self.raw_scores(self.prepare(X)))
+        p = transform(m.post_transform, self.raw_scores(self.prepare(X)), m.post_transform_params)
         if p.shape[1] == 1:
             return np.column_stack([1.0 - p[:, 0], p[:, 0]])
         return p
@@ -315,13 +331,32 @@ class BatchModel:
     def class_index(self, raw):
         """Index into ``classes`` of the predicted class for raw scores (n, n_outputs)."""
         m = self.model
+        if m.task == "outlier_detection":  # scikit-learn: -1 where decision < 0
+            return (self.decision_values(raw)[:, 0] >= 0.0).astype(np.intp)
         if raw.shape[1] == 1:
             positive = raw[:, 0] > 0.0 if m.binary_rule == "raw_gt_0" else raw[:, 0] >= 0.0
             return positive.astype(np.intp)
-        return np.argmax(raw, axis=1)  # the first of equal maxima, as the scorer's loop
+        d = self.decision_values(raw)
+        if d.shape[1] == 1:  # AdaBoost, two classes
+            return (d[:, 0] > 0.0).astype(np.intp)
+        return np.argmax(d, axis=1)  # the first of equal maxima, as the scorer's loop
 
 
-def transform(name, raw):
+def samme_decision(raw, weight_total):
+    """AdaBoost (SAMME) decision values, as scorer.samme_decision, for (n, K) raw sums."""
+    d = np.asarray(raw, dtype=np.float64) / weight_total
+    return (-d[:, 0] + d[:, 1])[:, None] if d.shape[1] == 2 else d
+
+
+def _softmax(z):
+    e = np.exp(z - z.max(axis=1, keepdims=True))
+    total = e[:, 0].copy()
+    for k in range(1, e.shape[1]):  # left to right, as the scorer adds
+        total += e[:, k]
+    return e / total[:, None]
+
+
+def transform(name, raw, params=None):
     """Apply a post-transform to raw scores of shape (n, K); return a new (n, K) array."""
     raw = np.asarray(raw, dtype=np.float64)
     with np.errstate(over="ignore"):
@@ -334,9 +369,14 @@ def transform(name, raw):
         if name == "logistic_double":
             return 1.0 / (1.0 + np.exp(-(2.0 * raw)))
         if name == "softmax":
-            e = np.exp(raw - raw.max(axis=1, keepdims=True))
-            total = e[:, 0].copy()
-            for k in range(1, e.shape[1]):  # left to right, as the scorer adds
-                total += e[:, k]
-            return e / total[:, None]
+            return _softmax(raw)
+        if name == "samme":
+            d = samme_decision(raw, params["weight_total"])
+            if d.shape[1] == 1:
+                return _softmax(np.column_stack([-d[:, 0] / 2, d[:, 0] / 2]))
+            return _softmax(d / (d.shape[1] - 1))
+        if name == "isolation":  # numpy's power, as scikit-learn's score_samples
+            den = params["denominator"]
+            q = raw / den if den != 0.0 else np.ones_like(raw)
+            return -(2 ** (-q))
     raise ValueError("unknown post_transform %r" % (name,))

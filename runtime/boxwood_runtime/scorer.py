@@ -44,6 +44,11 @@ DEFAULT_LIMITS = {
 _NAN = float("nan")
 _INF = float("inf")
 _NONFINITE = {"inf": _INF, "-inf": -_INF}
+# Parameters each post-transform takes (see transform()).
+_TRANSFORM_PARAMS = {"identity": (), "exp": (), "logistic": (), "logistic_double": (), "softmax": (),
+                     "samme": ("weight_total",), "isolation": ("denominator", "offset")}
+# Classifier post-transforms whose raw scores hold one value per class, even for two.
+_PER_CLASS = ("identity", "softmax", "samme")
 # Transformed outputs (probabilities, exp) are compared with the self-check within
 # this many units in the last place; raw scores must match exactly.
 SELF_CHECK_ULPS = 8
@@ -203,7 +208,7 @@ class Model:
         self.doc = doc
         self.unknown_category = unknown_category
         self.task = _get(doc, "task", str, "artefact")
-        _need(self.task in ("regression", "classification"), "unknown task %r" % self.task)
+        _need(self.task in ("regression", "classification", "outlier_detection"), "unknown task %r" % self.task)
         self._read_inputs(_get(doc, "inputs", dict, "artefact"), limits)
         self._read_outputs(_get(doc, "outputs", dict, "artefact"), limits)
         self._read_ensemble(_get(doc, "ensemble", dict, "artefact"), limits)
@@ -249,15 +254,29 @@ class Model:
 
     def _read_outputs(self, outputs, limits):
         self.post_transform = _get(outputs, "post_transform", str, "outputs")
-        _need(self.post_transform in ("identity", "exp", "logistic", "logistic_double", "softmax"),
-              "unknown post_transform %r" % self.post_transform)
+        _need(self.post_transform in _TRANSFORM_PARAMS, "unknown post_transform %r" % self.post_transform)
+        params = outputs.get("post_transform_params", {})
+        _need(isinstance(params, dict) and sorted(params) == sorted(_TRANSFORM_PARAMS[self.post_transform]),
+              "post_transform %r needs the parameters %s" % (self.post_transform,
+                                                             list(_TRANSFORM_PARAMS[self.post_transform])))
+        self.post_transform_params = dict((k, _number(v, "outputs.post_transform_params.%s" % k))
+                                          for k, v in params.items())
         self.output_names = _get(outputs, "names", list, "outputs")
         self.classes = outputs.get("classes")
         self.binary_rule = outputs.get("binary_rule")
         if self.task == "classification":
             _need(isinstance(self.classes, list) and len(self.classes) >= 2, "a classifier needs class labels")
-            if len(self.classes) == 2:
+            _need(self.post_transform in ("identity", "logistic", "logistic_double", "softmax", "samme"),
+                  "post_transform %r is not one for classifiers" % self.post_transform)
+            if len(self.classes) == 2 and self.post_transform not in _PER_CLASS:
                 _need(self.binary_rule in ("raw_gt_0", "raw_ge_0"), "unknown binary_rule")
+        elif self.task == "outlier_detection":
+            _need(self.post_transform == "isolation" and self.classes == [-1, 1],
+                  "an outlier detector has the isolation post-transform and the labels [-1, 1]")
+        else:
+            _need(self.task == "regression", "unknown task %r" % self.task)
+            _need(self.post_transform in ("identity", "exp"), "post_transform %r is not one for regressors"
+                  % self.post_transform)
 
     def _read_ensemble(self, ens, limits):
         self.combine = _get(ens, "combine", str, "ensemble")
@@ -267,8 +286,10 @@ class Model:
         self.base_values = [_number(b, "ensemble.base_values[%d]" % i) for i, b in enumerate(base)]
         self.n_outputs = k = len(self.base_values)
         _need(len(self.output_names) == k, "outputs.names must name each of the %d outputs" % k)
+        if self.task == "outlier_detection":
+            _need(k == 1, "an outlier detector has one raw output")
         if self.task == "classification":
-            want = 1 if len(self.classes) == 2 else len(self.classes)
+            want = 1 if len(self.classes) == 2 and self.post_transform not in _PER_CLASS else len(self.classes)
             _need(k == want, "%d classes need %d raw outputs, not %d" % (len(self.classes), want, k))
         _need(self.post_transform != "softmax" or k >= 2, "softmax needs two or more outputs")
         trees = _get(ens, "trees", list, "ensemble")
@@ -391,9 +412,11 @@ class Model:
                     try:
                         struct.pack("<f", v)
                     except OverflowError:
-                        raise RecordError(row, self.feature_names[i],
-                                          "%r is outside the float32 range this model compares in" % (v,))
-                raise
+                        if not self.accepts_infinity:
+                            raise RecordError(row, self.feature_names[i],
+                                              "%r is outside the float32 range this model compares in" % (v,))
+                        x[i] = _INF if v > 0 else -_INF  # numpy's float32 cast overflows to infinity
+                x = list(struct.unpack("<%df" % len(x), struct.pack("<%df" % len(x), *x)))
         return x
 
     def _numeric(self, v, i, row):
@@ -500,8 +523,20 @@ class Model:
         return fn(self.raw_scores(self.prepare(records)))
 
     def decision_function(self, records):
-        """Raw scores: a float per record (one output), or a list of floats (several)."""
-        return self._apply(records, self._raw_out)
+        """Decision values per record: a float (one value) or a list of floats.
+
+        For boosted models these are the raw scores (scikit-learn's
+        ``decision_function``, or ``predict`` before the inverse link); for AdaBoost and
+        isolation forests scikit-learn's ``decision_function``; for probability-averaging
+        classifiers (trees, forests) the class probabilities.
+        """
+        return self._apply(records, self._decision_out)
+
+    def score_samples(self, records):
+        """Isolation forests: scikit-learn's ``score_samples`` (lower is more abnormal)."""
+        if self.task != "outlier_detection":
+            raise TypeError("score_samples is for outlier detectors; this model does %s" % self.task)
+        return self._apply(records, lambda raw: self.transform_raw(raw)[0])
 
     def predict(self, records):
         """Predicted value (regression) or class label (classification) per record."""
@@ -515,13 +550,30 @@ class Model:
 
     def transform_raw(self, raw):
         """Apply the post-transform to one list of raw scores."""
-        return transform(self.post_transform, raw)
+        return transform(self.post_transform, raw, self.post_transform_params)
 
-    def _raw_out(self, raw):
-        return raw[0] if self.n_outputs == 1 else raw
+    def decision_values(self, raw):
+        """The decision values (always a list) for one list of raw scores."""
+        if self.post_transform == "samme":
+            return samme_decision(raw, self.post_transform_params["weight_total"])
+        if self.post_transform == "isolation":
+            return [self.transform_raw(raw)[0] - self.post_transform_params["offset"]]
+        return list(raw)
+
+    def exact_values(self, raw):
+        """The values a device must reproduce bit for bit (the self-check's ``raw``): the
+        raw scores, except for AdaBoost, whose raw vote sums scikit-learn never shows
+        (there: its decision values, formed by exact divisions and one addition)."""
+        if self.post_transform == "samme":
+            return samme_decision(raw, self.post_transform_params["weight_total"])
+        return list(raw)
+
+    def _decision_out(self, raw):
+        d = self.decision_values(raw)
+        return d[0] if len(d) == 1 else d
 
     def predict_from_raw(self, raw):
-        """The prediction (value or class label) for one list of raw scores."""
+        """The prediction (value, class label, or -1/1 for outliers) for one list of raw scores."""
         if self.task == "regression":
             out = self.transform_raw(raw)
             return out[0] if self.n_outputs == 1 else out
@@ -534,12 +586,17 @@ class Model:
 
     def class_index(self, raw):
         """Index into ``classes`` of the predicted class for raw scores ``raw``."""
+        if self.task == "outlier_detection":  # scikit-learn: -1 where decision < 0
+            return 0 if self.decision_values(raw)[0] < 0.0 else 1
         if self.n_outputs == 1:
             positive = raw[0] > 0.0 if self.binary_rule == "raw_gt_0" else raw[0] >= 0.0
             return 1 if positive else 0
+        values = self.decision_values(raw)
+        if len(values) == 1:  # AdaBoost, two classes: decision > 0 means the second
+            return 1 if values[0] > 0.0 else 0
         best = 0
-        for j in range(1, len(raw)):
-            if raw[j] > raw[best]:
+        for j in range(1, len(values)):
+            if values[j] > values[best]:
                 best = j
         return best
 
@@ -561,8 +618,9 @@ class Model:
                 except RecordError as exc:
                     return False, "reference %s" % (exc,)
                 want = [_number(v, "self_check.raw") for v in raws[r]]
-                if got != want:
-                    return False, "reference row %d: raw scores %r, expected %r" % (r, got, want)
+                if self.exact_values(got) != want:
+                    return False, "reference row %d: raw scores %r, expected %r" % (
+                        r, self.exact_values(got), want)
                 got_t = self.transform_raw(got)
                 want_t = [_number(v, "self_check.transformed") for v in outs[r]]
                 for a, b in zip(got_t, want_t):
@@ -606,7 +664,25 @@ def _logistic(v):
     return 1.0 / (1.0 + _exp(-v))
 
 
-def transform(name, raw):
+def _softmax(raw):
+    top = max(raw)
+    e = [_exp(v - top) for v in raw]
+    total = 0.0
+    for v in e:
+        total += v
+    return [v / total for v in e]
+
+
+def samme_decision(raw, weight_total):
+    """AdaBoost (SAMME) decision values from the summed class votes, in scikit-learn's
+    order of operations: divide by the total weight; for two classes, -d0 + d1."""
+    d = [v / weight_total for v in raw]
+    if len(d) == 2:
+        return [-d[0] + d[1]]
+    return d
+
+
+def transform(name, raw, params=None):
     """Apply a post-transform to a list of raw scores and return a list."""
     if name == "identity":
         return list(raw)
@@ -617,12 +693,16 @@ def transform(name, raw):
     if name == "logistic_double":
         return [_logistic(2.0 * v) for v in raw]
     if name == "softmax":
-        top = max(raw)
-        e = [_exp(v - top) for v in raw]
-        total = 0.0
-        for v in e:
-            total += v
-        return [v / total for v in e]
+        return _softmax(raw)
+    if name == "samme":  # probabilities: softmax of the decision scaled by 1 / (K - 1)
+        d = samme_decision(raw, params["weight_total"])
+        if len(d) == 1:
+            return _softmax([-d[0] / 2, d[0] / 2])
+        return _softmax([v / (len(d) - 1) for v in d])
+    if name == "isolation":  # score_samples: -(2 ** -(mean path length / c(max_samples)))
+        den = params["denominator"]
+        q = raw[0] / den if den != 0.0 else 1.0
+        return [-(2.0 ** -q)]
     raise ValueError("unknown post_transform %r" % (name,))
 
 

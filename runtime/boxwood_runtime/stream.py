@@ -22,7 +22,9 @@ What it promises:
 * Output columns: the id (see below), then the outputs, then ``error``.
   Regression: one column per output name (``model.output_names``) holding the
   prediction. Classification: ``label`` (the predicted class), then
-  ``proba_<class>`` for each class in the artefact's class order.
+  ``proba_<class>`` for each class in the artefact's class order. Outlier detection
+  (isolation forests): ``label`` (-1 outlier, 1 inlier), ``score`` (score_samples)
+  and ``decision`` (decision_function).
   Floats are written with ``repr`` (JSON Lines: as JSON numbers, which Python also
   writes with ``repr``), so they read back to the same bits. A non-finite output
   is written as the string ``inf`` / ``-inf`` / ``nan`` (JSON has no infinity).
@@ -74,6 +76,8 @@ def output_columns(model):
     """The output column names for ``model`` (without the id and error columns)."""
     if model.task == "classification":
         return [LABEL_COLUMN] + [PROBA_PREFIX + str(c) for c in model.classes]
+    if model.task == "outlier_detection":
+        return [LABEL_COLUMN, "score", "decision"]
     return [str(n) for n in model.output_names]
 
 
@@ -145,6 +149,9 @@ def _score(model, record, n, where):
         return None, _message(where, None, "a number is out of range: %s" % (exc,))
     if model.task == "classification":
         return [model.classes[model.class_index(raw)]] + list(model.proba_from_raw(raw)), None
+    if model.task == "outlier_detection":
+        return [model.classes[model.class_index(raw)], model.transform_raw(raw)[0],
+                model.decision_values(raw)[0]], None
     return list(model.transform_raw(raw)), None
 
 

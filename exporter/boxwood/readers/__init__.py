@@ -9,16 +9,22 @@ from __future__ import annotations
 from typing import Any
 
 from ..ir import Ensemble
-from . import sklearn_boosting
+from . import sklearn_boosting, sklearn_forests
 from .common import UnsupportedModel
 
-READERS = (sklearn_boosting.read,)
+READERS = (sklearn_boosting.read, sklearn_forests.read)
 
 SUPPORTED = (
     "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
     "sklearn.ensemble.GradientBoostingClassifier (loss: log_loss, exponential; binary and multiclass)",
     "sklearn.ensemble.HistGradientBoostingRegressor (loss: squared_error, absolute_error, gamma, poisson, quantile)",
     "sklearn.ensemble.HistGradientBoostingClassifier (binary and multiclass)",
+    "sklearn.ensemble.RandomForestRegressor / ExtraTreesRegressor (single and multi-output)",
+    "sklearn.ensemble.RandomForestClassifier / ExtraTreesClassifier (binary and multiclass)",
+    "sklearn.tree.DecisionTreeRegressor / ExtraTreeRegressor (single and multi-output)",
+    "sklearn.tree.DecisionTreeClassifier / ExtraTreeClassifier (binary and multiclass)",
+    "sklearn.ensemble.IsolationForest (score_samples, decision_function, predict)",
+    "sklearn.ensemble.AdaBoostClassifier (SAMME, decision-tree base learners)",
 )
 
 

@@ -57,6 +57,7 @@ def from_document(doc: Dict[str, Any]) -> Ensemble:
         binary_rule=outputs.get("binary_rule"),
         output_names=list(outputs["names"]),
         accepts_infinity=inputs["accepts_infinity"],
+        post_transform_params={k: _num(v) for k, v in outputs.get("post_transform_params", {}).items()},
         provenance=doc.get("provenance", {}),
         reference=reference,
     ).check()
