@@ -37,16 +37,50 @@ PROBA_ULPS = 4
 MIN_ROWS = 1000
 
 
+def _pipeline_routes(ensemble):
+    """For an ensemble with preprocessing: per feature, the raw field index it reads and
+    whether a threshold probe on the field reaches the feature unchanged (impute only)."""
+    field_of = [ensemble.fields.index(f.source["field"]) for f in ensemble.features]
+    direct = [all(st["op"] == "impute" for st in f.source["steps"]) for f in ensemble.features]
+    return field_of, direct
+
+
+def _pipeline_value_probes(ensemble):
+    """(field, value) probes for raw fields: every category of each encoder, an unseen
+    one where the encoder maps unknowns to a value, and missing where something upstream
+    of the trees accepts it (an imputer, an encoder that encodes missing, or trees that
+    route missing)."""
+    probes = []
+    for f in ensemble.features:
+        fi = ensemble.fields.index(f.source["field"])
+        steps = f.source["steps"]
+        first = steps[0] if steps else None
+        takes_missing = (ensemble.missing_values == "route" or (first and first["op"] == "impute")
+                         or (first and first["op"] == "encode" and "missing" in first))
+        if takes_missing:
+            probes.append((fi, None))
+        for st in steps:
+            if st["op"] == "encode":
+                probes.extend((fi, c) for c in st["categories"])
+                if st["unknown"] != "error":
+                    probes.append((fi, "zz-never-seen"))
+    return probes
+
+
 def probe_rows(case, ensemble, limit=4000):
     """Data rows plus threshold, NaN and category probes; at least MIN_ROWS rows."""
     base_rows = case.rows
+    if ensemble.fields is not None:
+        field_of, direct = _pipeline_routes(ensemble)
+    else:
+        field_of, direct = list(range(len(ensemble.features))), [True] * len(ensemble.features)
     rows = [list(r) for r in base_rows]
     probes = []
     seen = set()
     for t in ensemble.trees:
         for i in range(t.n_nodes):
             f = t.feature[i]
-            if f < 0 or t.left_categories[i] is not None:
+            if f < 0 or t.left_categories[i] is not None or not direct[f]:
                 continue
             thr = t.threshold[i]
             if not math.isfinite(thr) or (f, thr) in seen:
@@ -58,12 +92,15 @@ def probe_rows(case, ensemble, limit=4000):
                 values += [float(t32), float(np.nextafter(t32, np.float32(-np.inf))),
                            float(np.nextafter(t32, np.float32(np.inf)))]
             for v in values:
-                probes.append((f, v))
-    for j, feat in enumerate(ensemble.features):
-        if ensemble.missing_values == "route":
-            probes.append((j, None))
-        if feat.is_categorical:
-            probes.extend((j, c) for c in feat.categories)
+                probes.append((field_of[f], v))
+    if ensemble.fields is not None:
+        probes.extend(_pipeline_value_probes(ensemble))
+    else:
+        for j, feat in enumerate(ensemble.features):
+            if ensemble.missing_values == "route":
+                probes.append((j, None))
+            if feat.is_categorical:
+                probes.extend((j, c) for c in feat.categories)
     for n, (f, v) in enumerate(probes):
         row = list(base_rows[n % len(base_rows)])
         row[f] = v
@@ -136,6 +173,8 @@ def test_probes_cross_every_threshold(exported):
             f = t.feature[i]
             if f < 0 or t.left_categories[i] is not None or not math.isfinite(t.threshold[i]):
                 continue
+            if ensemble.fields is not None and not _pipeline_routes(ensemble)[1][f]:
+                continue  # an encoded feature: its values are codes, probed by category
             xs = [model.prepare(r)[f] for r in rows]
             assert any(x <= t.threshold[i] for x in xs) and any(x > t.threshold[i] for x in xs)
             checked += 1
@@ -145,7 +184,7 @@ def test_probes_cross_every_threshold(exported):
 def test_single_record_forms_agree(exported):
     """A dict record, a list record and a batch give the same numbers."""
     case, ensemble, model, rows, source = exported
-    names = model.feature_names
+    names = model.input_names
     for r in rows[:20]:
         as_dict = dict(zip(names, r))
         assert model.decision_function(as_dict) == model.decision_function(r)
@@ -185,3 +224,61 @@ def test_missing_cases_route_both_ways():
         _, ensemble, _ = zoo.exported(name)
         flags = {t.missing_left[i] for t in ensemble.trees for i in range(t.n_nodes) if t.feature[i] >= 0}
         assert flags == {True, False}, name
+
+
+# --------------------------------------------------------------------------- pipelines
+def test_pipeline_scores_raw_dict_records():
+    """A Pipeline fitted on a DataFrame with string categories and missing values scores
+    raw dict records on the device exactly as pipeline.predict does on the DataFrame."""
+    case, ensemble, data = zoo.exported("pipe_hgbr_encoded")
+    device = boxwood_runtime.load(data)
+    records = case.X.to_dict("records")  # raw records: strings, floats, NaN
+    assert any(isinstance(r["sex"], str) for r in records)
+    assert any(r["bmi_band"] != r["bmi_band"] for r in records)  # NaN present
+    assert np.array_equal(np.array(device.predict(records)), case.model.predict(case.X))
+
+
+def test_encoder_unknown_value_is_followed():
+    """OrdinalEncoder(handle_unknown="use_encoded_value", unknown_value=-1): an unseen
+    category becomes -1 on the device as in scikit-learn (the histogram model behind it
+    then routes the unseen code like a missing value)."""
+    import pandas as pd
+
+    case, ensemble, data = zoo.exported("pipe_hgbr_encoded")
+    device = boxwood_runtime.load(data)  # default unknown_category="error" does not apply here
+    rec = case.X.iloc[[3]].to_dict("records")[0]
+    rec["bmi_band"] = "b99"
+    assert device.predict(rec) == case.model.predict(pd.DataFrame([rec]))[0]
+
+
+def test_encoder_unknown_error_is_followed():
+    """OrdinalEncoder(handle_unknown="error"): scikit-learn raises on an unseen category;
+    the device raises a RecordError naming the raw field, never guesses."""
+    import pandas as pd
+
+    case, ensemble, data = zoo.exported("pipe_gbc_strict_encoder")
+    device = boxwood_runtime.load(data)
+    rec = case.X.iloc[[0]].to_dict("records")[0]
+    rec["bmi_band"] = "b99"
+    with pytest.raises(ValueError):
+        case.model.predict(pd.DataFrame([rec]))
+    with pytest.raises(boxwood_runtime.RecordError) as err:
+        device.predict(rec)
+    assert err.value.field == "bmi_band" and "unknown category 'b99'" in str(err.value)
+    # a missing band is encoded as -1 (encoded_missing_value) by both
+    rec["bmi_band"] = np.nan
+    frame = pd.DataFrame([rec]).astype({"bmi_band": object, "sex": object})
+    assert device.predict(rec) == case.model.predict(frame)[0]
+
+
+def test_unsupported_pipeline_step_is_named():
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    from boxwood.readers import UnsupportedModel, read_model
+
+    case = zoo.fitted("gbr_squared_error")
+    pipe = make_pipeline(StandardScaler(), case.model.__class__(n_estimators=5)).fit(case.X, case.y)
+    with pytest.raises(UnsupportedModel) as err:
+        read_model(pipe)
+    assert "standardscaler (StandardScaler)" in str(err.value) and "OrdinalEncoder" in str(err.value)

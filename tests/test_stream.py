@@ -139,7 +139,7 @@ def devices():
 def test_zoo_csv_matches_sklearn(devices, name):
     case, ensemble, device = devices(name)
     n = len(case.rows)
-    counts, out = run(device, csv_text(device.feature_names, case.rows, ids_for(n)))
+    counts, out = run(device, csv_text(device.input_names, case.rows, ids_for(n)))
     assert counts == Counts(n, n, 0, None)
     rows = parse_csv(out)
     assert [r["id"] for r in rows] == ids_for(n)  # id passthrough, in order
@@ -151,7 +151,7 @@ def test_zoo_jsonl_matches_sklearn(devices, name):
     case, ensemble, device = devices(name)
     n = len(case.rows)
     ids = list(range(n))  # JSON ids keep their JSON type
-    counts, out = run(device, jsonl_text(device.feature_names, case.rows, ids))
+    counts, out = run(device, jsonl_text(device.input_names, case.rows, ids))
     assert counts == Counts(n, n, 0, None)
     rows = parse_jsonl(out)
     assert [r["id"] for r in rows] == ids

@@ -152,6 +152,10 @@ def _build(name: str) -> Case:
                                     "breast_cancer+nan"),
         "ada_binary": lambda: (ADA(DTC(max_depth=2), n_estimators=20, random_state=0), "breast_cancer"),
         "ada_multiclass": lambda: (ADA(DTC(max_depth=2), n_estimators=20, random_state=0), "wine"),
+        # pipelines: raw DataFrame records with string categories and missing values
+        "pipe_hgbr_encoded": lambda: (_pipe_hgbr_encoded(), "diabetes_strings"),
+        "pipe_gbc_strict_encoder": lambda: (_pipe_gbc_strict(), "diabetes_strings_class"),
+        "pipe_rfr_constant_impute": lambda: (_pipe_rfr_constant(), "diabetes_strings"),
     }
     model, data = spec[name]()
     if data == "diabetes_frame":
@@ -165,6 +169,12 @@ def _build(name: str) -> Case:
         X, y = _data("diabetes")
         X = np.array(X)
         X[:, 1] = (X[:, 1] > 0).astype(float)  # 'sex' as category codes 0.0 / 1.0
+    elif data in ("diabetes_strings", "diabetes_strings_class"):
+        X, y = _diabetes_frame(nan_rate=0.06)
+        for col in ("sex", "bmi_band"):  # raw string columns, NaN for missing
+            X[col] = X[col].astype(object).where(X[col].notna(), np.nan)
+        if data.endswith("_class"):
+            y = np.digitize(y, np.quantile(y, [0.5]))
     elif data == "friedman1_multi":
         X, y = _data("friedman1")
         y = np.c_[y, np.sin(X[:, 0] * 3.0) + X[:, 3]]  # a second target for multi-output
@@ -198,7 +208,66 @@ FOREST_CASES = [
     "rfr_multioutput", "rfc_binary", "rfc_multiclass", "etr", "etc_multiclass", "iforest",
     "iforest_subsets", "ada_binary", "ada_multiclass",
 ]
-ALL_CASES = CASES + FOREST_CASES
+# Pipelines whose preprocessing the artefact carries (issue 5): records are raw fields.
+PIPELINE_CASES = ["pipe_hgbr_encoded", "pipe_gbc_strict_encoder", "pipe_rfr_constant_impute"]
+ALL_CASES = CASES + FOREST_CASES + PIPELINE_CASES
+
+
+NUMERIC_DIABETES = ["age", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6"]
+
+
+def _pipe_hgbr_encoded():
+    """Impute then ordinal-encode the string columns (unknown -> -1), impute numerics by
+    median, histogram boosting with the encoded columns as native categoricals."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import HistGradientBoostingRegressor
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import OrdinalEncoder
+
+    ct = ColumnTransformer([
+        ("cat", make_pipeline(SimpleImputer(strategy="most_frequent"),
+                              OrdinalEncoder(handle_unknown="use_encoded_value", unknown_value=-1)),
+         ["sex", "bmi_band"]),
+        ("num", SimpleImputer(strategy="median"), ["age", "bmi", "bp", "s1", "s5"]),
+    ], remainder="passthrough")
+    return make_pipeline(ct, HistGradientBoostingRegressor(categorical_features=[0, 1], max_iter=30,
+                                                           random_state=0, early_stopping=False))
+
+
+def _pipe_gbc_strict():
+    """An encoder that refuses unknown categories (missing encoded as -1), numerics
+    imputed by mean, a column-dropping selector, classic boosting."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import GradientBoostingClassifier
+    from sklearn.feature_selection import SelectKBest, f_classif
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import OrdinalEncoder
+
+    ct = ColumnTransformer([
+        ("cat", OrdinalEncoder(handle_unknown="error", encoded_missing_value=-1), [10]),  # bmi_band by index
+        ("num", SimpleImputer(strategy="mean"), NUMERIC_DIABETES),
+    ], remainder="drop")
+    return make_pipeline(ct, SelectKBest(f_classif, k=6),
+                         GradientBoostingClassifier(n_estimators=30, max_depth=3, random_state=0))
+
+
+def _pipe_rfr_constant():
+    """Constant imputation of numerics and of a string column, then encoding; forest."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import RandomForestRegressor
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import OrdinalEncoder
+
+    ct = ColumnTransformer([
+        ("num", SimpleImputer(strategy="constant", fill_value=0.0), ["age", "bmi", "bp", "s5"]),
+        ("cat", make_pipeline(SimpleImputer(strategy="constant", fill_value="unknown_band"),
+                              OrdinalEncoder()), ["bmi_band"]),
+        ("drop_sex", "drop", ["sex"]),
+    ], remainder="drop")
+    return make_pipeline(ct, RandomForestRegressor(n_estimators=10, max_depth=6, random_state=0))
 
 
 @functools.lru_cache(maxsize=None)

@@ -58,6 +58,15 @@ class Feature:
     name: str
     kind: str = "numeric"  # "numeric" or "categorical"
     categories: Optional[List[Any]] = None
+    # Where the value comes from when the ensemble carries preprocessing: the raw record
+    # field ``source["field"]`` (a name in ``Ensemble.fields``) passed through the steps
+    # ``source["steps"]`` in order. Each step is a dict:
+    #   {"op": "impute", "value": v}: a missing value (None/NaN) becomes v;
+    #   {"op": "encode", "categories": [...], "unknown": "error" | number | None,
+    #    ["missing": number | None]}: a value becomes float(its index in categories);
+    #    a missing value becomes "missing" when that key is present (None = NaN), else
+    #    it counts as unknown; an unknown value is an error or becomes "unknown".
+    source: Optional[Dict[str, Any]] = None
 
     @property
     def is_categorical(self) -> bool:
@@ -141,6 +150,9 @@ class Ensemble:
     output_names: List[str] = field(default_factory=list)
     accepts_infinity: bool = True
     post_transform_params: Dict[str, float] = field(default_factory=dict)
+    # Raw record fields, when the ensemble carries preprocessing (a scikit-learn Pipeline);
+    # then every feature has a ``source``. None: records hold the features themselves.
+    fields: Optional[List[str]] = None
     provenance: Dict[str, Any] = field(default_factory=dict)
     reference: Optional["Reference"] = None
 
@@ -171,6 +183,7 @@ class Ensemble:
             _one_of("feature kind of %r" % f.name, f.kind, ("numeric", "categorical"))
             if f.is_categorical and not f.categories:
                 raise ModelError("categorical feature %r lists no categories" % f.name)
+            _check_source(f, self.fields)
         k = self.n_outputs
         if k < 1:
             raise ModelError("the ensemble has no outputs (no base values)")
@@ -209,6 +222,28 @@ class Ensemble:
         for index, tree in enumerate(self.trees):
             _check_tree(tree, index, self.features, k)
         return self
+
+
+def _check_source(f: Feature, fields: Optional[List[str]]) -> None:
+    if fields is None:
+        if f.source is not None:
+            raise ModelError("feature %r has a source but the ensemble lists no raw fields" % f.name)
+        return
+    src = f.source
+    if not isinstance(src, dict) or src.get("field") not in fields or not isinstance(src.get("steps"), list):
+        raise ModelError("feature %r needs a source naming one of the raw fields %r" % (f.name, fields))
+    for step in src["steps"]:
+        op = step.get("op")
+        if op == "impute":
+            ok = set(step) == {"op", "value"} and isinstance(step["value"], (int, float, str))
+        elif op == "encode":
+            ok = (set(step) - {"missing"} == {"op", "categories", "unknown"}
+                  and isinstance(step["categories"], list) and step["categories"]
+                  and (step["unknown"] in ("error", None) or isinstance(step["unknown"], float)))
+        else:
+            ok = False
+        if not ok:
+            raise ModelError("feature %r: malformed preprocessing step %r" % (f.name, step))
 
 
 def _one_of(what: str, value: Any, allowed: Sequence[Any]) -> None:

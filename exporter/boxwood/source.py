@@ -23,6 +23,17 @@ class SourceModel:
         """Rows in feature order (None = missing) as the input the estimator was fitted on."""
         feats = self.ensemble.features
         named = getattr(self.model, "feature_names_in_", None) is not None
+        if self.ensemble.fields is not None:  # a pipeline: rows hold the raw fields
+            import pandas as pd
+
+            if not named:
+                return np.array([[np.nan if v is None else v for v in r] for r in rows], dtype=np.float64)
+            columns = {}
+            for j, name in enumerate(self.ensemble.fields):
+                col = [np.nan if r[j] is None else r[j] for r in rows]
+                textual = any(isinstance(v, str) for v in col)
+                columns[name] = pd.Series(col, dtype=object if textual else np.float64)
+            return pd.DataFrame(columns)
         if named:
             import pandas as pd
 
@@ -85,6 +96,8 @@ def probe_rows(ensemble: Ensemble, n_rows: int = 6) -> List[List[Any]]:
                           if t.feature[i] == j and t.left_categories[i] is None
                           and math.isfinite(t.threshold[i])})
                   for j in range(len(ensemble.features))]
+    if ensemble.fields is not None:
+        return _raw_field_rows(ensemble, thresholds, n_rows)
     rows = []
     for r in range(n_rows):
         row: List[Any] = []
@@ -103,4 +116,26 @@ def probe_rows(ensemble: Ensemble, n_rows: int = 6) -> List[List[Any]]:
         rows.append(row)
     if ensemble.missing_values == "route":
         rows.append([None] * len(ensemble.features))
+    return rows
+
+
+def _raw_field_rows(ensemble: Ensemble, thresholds: List[List[float]], n_rows: int) -> List[List[Any]]:
+    """Reference rows for an ensemble with preprocessing: raw field values. A field that
+    is encoded cycles through its categories; a numeric field takes the thresholds of the
+    feature it feeds. One more row has every field missing."""
+    import math
+
+    per_field: List[List[Any]] = [[] for _ in ensemble.fields]
+    for j, f in enumerate(ensemble.features):
+        fi = ensemble.fields.index(f.source["field"])
+        encodes = [st for st in f.source["steps"] if st["op"] == "encode"]
+        if encodes:
+            per_field[fi] = list(encodes[0]["categories"])
+        elif not per_field[fi]:
+            per_field[fi] = [float(np.float32(t)) if ensemble.compare_precision == "float32" else t
+                             for t in thresholds[j] if math.isfinite(t)] or [0.0]
+    rows = []
+    for r in range(n_rows):
+        rows.append([vals[(r * len(vals)) // n_rows] if vals else 0.0 for vals in per_field])
+    rows.append([None] * len(ensemble.fields))
     return rows

@@ -153,6 +153,9 @@ class BatchModel:
         the same as the pure-Python scorer's. Raises RecordError naming the row and
         field of the first bad value.
         """
+        if isinstance(records, np.ndarray) and self.model._sources is not None:
+            raise RecordError(None, None, "this artefact carries preprocessing (raw fields %s); pass a list of "
+                              "records, not a feature matrix" % ", ".join(self.model.input_names))
         if isinstance(records, np.ndarray) and records.dtype.kind in "fiu":
             return self._prepare_array(records)
         if isinstance(records, np.ndarray):

@@ -68,7 +68,189 @@ class RecordError(ValueError):
         where = "record %s" % (row,) if row is not None else "record"
         if field is not None:
             where += ", field %r" % (field,)
-        ValueError.__init__(self, "%s: %s" % (where, reason))
+        super().__init__("%s: %s" % (where, reason))  # MicroPython: ValueError.__init__ is absent
+
+
+class PlatformError(ArtefactError):
+    """This Python cannot reproduce the model's numbers (e.g. its floats are single
+    precision). A kind of ArtefactError, so that callers that refuse an artefact refuse."""
+
+
+# ----------------------------------------------------------------------------- platform
+# The scorer also runs under MicroPython (1.2x, double-precision builds; docs/device.md).
+# What MicroPython does differently is handled where it happens, marked "MicroPython".
+# Float parsing: CPython's float() and json are correctly rounded; some MicroPython
+# releases' are not (1.23 misreads e.g. 1e23 and 2.2250738585072014e-308 by an ulp or
+# more, which would move thresholds). check_platform() probes the parser once with such
+# strings; where it fails, artefacts are read by _json_exact(), which parses every
+# non-integer number with exact integer arithmetic. None: decided by the probe;
+# True / False: force the exact parser on / off.
+EXACT_FLOAT_PARSING = None
+# Decimal strings an incorrectly rounded parser tends to get wrong, with the bits of
+# their correctly rounded float64 values (from CPython's correctly rounded float()).
+_PARSER_PROBES = (
+    ("1e23", 0x44B52D02C7E14AF6),
+    ("2.2250738585072014e-308", 0x0010000000000000),
+    ("2.4703282292062327e-324", 0x0000000000000000),
+    ("123456789.12345679", 0x419D6F34547E6B75),
+    ("3.4028234663852886e+38", 0x47EFFFFFE0000000),
+    ("1.401298464324817e-45", 0x36A0000000000000),
+    ("0.1", 0x3FB999999999999A),
+    ("9007199254740993.0", 0x4340000000000000),
+    ("5e-324", 0x0000000000000001),
+    ("1.7976931348623157e+308", 0x7FEFFFFFFFFFFFFF),
+)
+_parser_ok = None
+
+
+def check_platform():
+    """Check that this Python computes in float64; return True when its own float parser
+    is trusted for artefacts (False: the exact parser is used). Raises PlatformError on
+    a build whose floats are narrower than float64 (MicroPython's single-precision and
+    30-bit float builds): it could not reproduce the source model's comparisons."""
+    global _parser_ok
+    if 1.0 + 2.0 ** -52 == 1.0:
+        raise PlatformError("this Python's floats are narrower than float64 (a single-precision build?); "
+                            "the scorer needs double-precision floats to reproduce the model's decisions "
+                            "(for MicroPython: a build with MICROPY_FLOAT_IMPL_DOUBLE)")
+    if _parser_ok is None:
+        got = json.loads("[" + ",".join(text for text, _ in _PARSER_PROBES) + "]")
+        _parser_ok = all(struct.pack("<d", v) == struct.pack("<Q", bits)
+                         for v, (_, bits) in zip(got, _PARSER_PROBES))
+    return _parser_ok if EXACT_FLOAT_PARSING is None else not EXACT_FLOAT_PARSING
+
+
+def _sha256_hex(*parts):
+    h = hashlib.sha256()
+    for part in parts:
+        h.update(part)
+    return "%02x" * 32 % tuple(h.digest())  # MicroPython's sha256 has no hexdigest()
+
+
+def _bit_length(n):
+    try:
+        return n.bit_length()
+    except AttributeError:  # MicroPython: an estimate at most 3 too high is enough below
+        return len("%x" % n) * 4
+
+
+def exact_float(text):
+    """The float64 nearest to the decimal number ``text`` (ties to even), found with
+    integer arithmetic only, so it is right whatever this Python's own parser does."""
+    text = text.strip().lower()
+    sign = 1 if text[:1] == "-" else 0
+    if text[:1] in ("-", "+"):
+        text = text[1:]
+    exp10 = 0
+    e = text.find("e")
+    if e >= 0:
+        exp10 = int(text[e + 1:])
+        text = text[:e]
+    dot = text.find(".")
+    if dot >= 0:
+        exp10 -= len(text) - dot - 1
+        text = text[:dot] + text[dot + 1:]
+    if not text or text.strip("0123456789"):
+        raise ValueError("not a decimal number: %r" % (text,))
+    digits = int(text)
+    if digits == 0 or exp10 + len(text) < -330:  # zero, or below half the smallest float
+        return struct.unpack("<d", struct.pack("<Q", sign << 63))[0]
+    if exp10 > 310:
+        return -_INF if sign else _INF
+    num, den = (digits * 10 ** exp10, 1) if exp10 >= 0 else (digits, 10 ** -exp10)
+    shift = 52 - (_bit_length(num) - _bit_length(den))  # value ~ q * 2**-shift
+    while True:
+        if shift > 1074:  # below the normal range: fewer significant bits
+            shift = 1074
+        q, r = divmod(num << shift, den) if shift >= 0 else divmod(num, den << -shift)
+        d = den if shift >= 0 else den << -shift
+        if q >= 1 << 53:
+            shift -= 1
+        elif q < 1 << 52 and shift < 1074:
+            shift += 1
+        else:
+            break
+    if 2 * r > d or (2 * r == d and q & 1):  # round half to even
+        q += 1
+    exp2 = -shift
+    if q == 1 << 53:
+        q >>= 1
+        exp2 += 1
+    if q < 1 << 52:  # subnormal (exp2 == -1074)
+        bits = q
+    elif exp2 + 1075 >= 2047:
+        bits = 0x7FF << 52
+    else:
+        bits = ((exp2 + 1075) << 52) | (q - (1 << 52))
+    return struct.unpack("<d", struct.pack("<Q", (sign << 63) | bits))[0]
+
+
+_JSON_SPACE = b" \t\r\n"
+_JSON_NUMBER = b"+-0123456789.eE"
+
+
+def _json_exact(data):
+    """json.loads for artefact bytes, with every non-integer number read by exact_float.
+    Strings are decoded by the platform's json (only numbers are in question)."""
+    if not isinstance(data, (bytes, bytearray)):
+        data = data.encode("utf-8")
+    value, i = _json_value(data, _json_space(data, 0))
+    if _json_space(data, i) != len(data):
+        raise ValueError("extra data at byte %d" % i)
+    return value
+
+
+def _json_space(data, i):
+    while i < len(data) and data[i] in _JSON_SPACE:
+        i += 1
+    return i
+
+
+def _json_value(data, i):
+    c = data[i]
+    if c == 0x7B or c == 0x5B:  # { or [
+        close, out = (0x7D, {}) if c == 0x7B else (0x5D, [])
+        i = _json_space(data, i + 1)
+        if data[i] == close:
+            return out, i + 1
+        while True:
+            item, i = _json_value(data, i)
+            if c == 0x7B:
+                i = _json_space(data, i)
+                if not isinstance(item, str) or data[i] != 0x3A:
+                    raise ValueError("bad object member at byte %d" % i)
+                out[item], i = _json_value(data, _json_space(data, i + 1))
+            else:
+                out.append(item)
+            i = _json_space(data, i)
+            if data[i] == close:
+                return out, i + 1
+            if data[i] != 0x2C:
+                raise ValueError("expected ',' at byte %d" % i)
+            i = _json_space(data, i + 1)
+    if c == 0x22:  # a string: up to the first quote not escaped by a backslash
+        j = i
+        while True:
+            j = data.find(b'"', j + 1)
+            if j < 0:
+                raise ValueError("unterminated string at byte %d" % i)
+            k = j
+            while data[k - 1] == 0x5C:
+                k -= 1
+            if (j - k) % 2 == 0:
+                return json.loads(data[i:j + 1]), j + 1
+    for word, value in ((b"true", True), (b"false", False), (b"null", None)):
+        if data[i:i + len(word)] == word:
+            return value, i + len(word)
+    j = i
+    while j < len(data) and data[j] in _JSON_NUMBER:
+        j += 1
+    token = data[i:j].decode("ascii")
+    if not token:
+        raise ValueError("unexpected character at byte %d" % i)
+    if "." in token or "e" in token or "E" in token:
+        return exact_float(token), j
+    return int(token), j
 
 
 # ----------------------------------------------------------------------------- digest
@@ -92,28 +274,35 @@ def artefact_bytes(body):
 
 def _verify_file_bytes(data):
     """Check the digest of a file in the canonical layout; return the parsed document."""
-    text = data.rstrip(b"\r\n")
+    end = len(data)
+    while end and data[end - 1] in (10, 13):  # the final newline is not hashed
+        end -= 1
     n = len(_DIGEST_PREFIX)
-    if text[:n] == _DIGEST_PREFIX and text[n + 64:n + 66] == b'",':
-        stated = text[n:n + 64].decode("ascii", "replace")
-        actual = hashlib.sha256(b"{" + text[n + 66:]).hexdigest()
+    if data[:n] == _DIGEST_PREFIX and data[n + 64:n + 66] == b'",':
+        stated = data[n:n + 64].decode("ascii", "replace")
+        # Hashed in place (no copy of the file: a small board's memory is tight).
+        actual = _sha256_hex(b"{", memoryview(data)[n + 66:end])
         if actual != stated:
             raise ArtefactError("digest mismatch: the file says sha256 %s but its content hashes to %s; "
                                 "the file was changed or damaged after export" % (stated, actual))
-        doc = _parse_json(text)
+        doc = _parse_json(data)
         if doc.get(DIGEST_KEY) != "sha256:" + stated:
             raise ArtefactError("the digest field is repeated or altered")
         return doc
     # Not in the canonical layout (e.g. pretty-printed by hand): verify by re-serialising.
-    doc = _parse_json(text)
+    doc = _parse_json(data)
     verify_digest(doc)
     return doc
 
 
 def _parse_json(data):
+    trusted = check_platform()
     try:
-        doc = json.loads(data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data)
-    except (ValueError, UnicodeError) as exc:
+        if trusted:
+            doc = json.loads(data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data)
+        else:  # this Python's float parser is not correctly rounded (MicroPython 1.23)
+            doc = _json_exact(data)
+    except (ValueError, UnicodeError, IndexError) as exc:
         raise ArtefactError("not valid JSON (truncated or damaged file?): %s" % (exc,))
     if not isinstance(doc, dict):
         raise ArtefactError("the artefact must be a JSON object")
@@ -127,8 +316,13 @@ def verify_digest(doc):
         raise ArtefactError("the artefact has no %r field of the form 'sha256:<hex>'" % DIGEST_KEY)
     body = dict((k, v) for k, v in doc.items() if k != DIGEST_KEY)
     try:
-        actual = "sha256:" + hashlib.sha256(canonical_bytes(body)).hexdigest()
+        actual = "sha256:" + _sha256_hex(canonical_bytes(body))
     except (TypeError, ValueError) as exc:
+        try:
+            json.dumps({}, sort_keys=True, separators=(",", ":"))
+        except TypeError:  # MicroPython's json cannot write canonical JSON
+            raise ArtefactError("this Python's json module cannot re-serialise an artefact to check its "
+                                "digest; use the artefact file exactly as exported (canonical layout)")
         raise ArtefactError("the artefact holds values JSON cannot carry: %s" % (exc,))
     if actual != stated:
         raise ArtefactError("digest mismatch: the artefact says %s but its content hashes to %s; "
@@ -147,6 +341,7 @@ def load(source, limits=None, unknown_category="error", self_check=True):
     model unless raw scores match exactly and transformed outputs within
     SELF_CHECK_ULPS units in the last place.
     """
+    check_platform()
     lim = dict(DEFAULT_LIMITS)
     if limits:
         lim.update(limits)
@@ -158,7 +353,7 @@ def load(source, limits=None, unknown_category="error", self_check=True):
             data = bytes(source)
         else:
             with open(source, "rb") as fh:
-                data = fh.read(lim["max_bytes"] + 1)
+                data = _read_bounded(fh, lim["max_bytes"])
         if len(data) > lim["max_bytes"]:
             raise ArtefactError("the artefact is larger than max_bytes=%d" % lim["max_bytes"])
         doc = _verify_file_bytes(data)
@@ -168,6 +363,18 @@ def load(source, limits=None, unknown_category="error", self_check=True):
         if not ok:
             raise ArtefactError("self-check failed: " + message)
     return model
+
+
+def _read_bounded(fh, limit):
+    """The whole file if it holds at most ``limit`` bytes, else its first ``limit + 1``.
+    Asks for the size first: MicroPython's read(n) allocates n bytes up front."""
+    try:
+        fh.seek(0, 2)
+        size = fh.tell()
+        fh.seek(0)
+    except (OSError, AttributeError, ValueError):
+        size = limit
+    return fh.read(min(size, limit) + 1)
 
 
 def _need(cond, message):
@@ -222,7 +429,7 @@ class Model:
         self.accepts_infinity = _get(inputs, "accepts_infinity", bool, "inputs")
         tokens = _get(inputs, "missing_tokens", list, "inputs")
         _need(all(isinstance(t, str) for t in tokens), "inputs.missing_tokens must be strings")
-        self.missing_tokens = frozenset(tokens)
+        self.missing_tokens = set(tokens)  # set, not frozenset: some MicroPython builds lack frozenset
         feats = _get(inputs, "features", list, "inputs")
         _need(0 < len(feats) <= limits["max_features"], "feature count out of bounds")
         self.feature_names = []
@@ -251,7 +458,86 @@ class Model:
         _need(len(set(self.feature_names)) == len(self.feature_names), "feature names repeat")
         self._index = dict((n, i) for i, n in enumerate(self.feature_names))
         self.n_features = len(self.feature_names)
+        self._read_preprocessing(inputs, feats, limits)
 
+    def _read_preprocessing(self, inputs, feats, limits):
+        """Raw record fields and each feature's source steps (a scikit-learn Pipeline's
+        preprocessing), or, without "fields", records that hold the features themselves.
+
+        Sets ``input_names`` (what a record carries), ``_sources`` (per feature: field
+        index and steps, or None), ``_label`` (the name record errors use per feature),
+        ``_unseen_missing`` (per feature: an unseen category code routes as missing, as
+        scikit-learn does behind an encoder) and, per input, ``_known_text`` (strings
+        that are category values) and ``_textual`` (may hold text)."""
+        n = self.n_features
+        self._label = list(self.feature_names)
+        self._unseen_missing = [False] * n
+        fields = inputs.get("fields")
+        if fields is None:
+            for i, f in enumerate(feats):
+                _need("source" not in f, "inputs.features[%d] has a source but inputs lists no fields" % i)
+            self.input_names = list(self.feature_names)
+            self._sources = None
+            self._known_text = [set(c for c in (cats or []) if isinstance(c, str)) for cats in self.categories]
+            self._textual = [bool(k) for k in self._known_text]
+            self._used = [True] * n
+            return
+        _need(isinstance(fields, list) and 0 < len(fields) <= limits["max_features"]
+              and all(isinstance(f, str) for f in fields) and len(set(fields)) == len(fields),
+              "inputs.fields must list distinct field names")
+        self.input_names = list(fields)
+        index = dict((name, i) for i, name in enumerate(fields))
+        known = [set() for _ in fields]
+        textual = [False] * len(fields)
+        self._sources = []
+        for j, f in enumerate(feats):
+            where = "inputs.features[%d].source" % j
+            src = _get(f, "source", dict, "inputs.features[%d]" % j)
+            field = _get(src, "field", str, where)
+            _need(field in index, "%s.field %r is not one of inputs.fields" % (where, field))
+            fi = index[field]
+            self._label[j] = field
+            steps = []
+            for k, step in enumerate(_get(src, "steps", list, where)):
+                at = "%s.steps[%d]" % (where, k)
+                op = _get(step, "op", str, at)
+                if op == "impute":
+                    value = step.get("value")
+                    _need(isinstance(value, (str, int, float)) and not isinstance(value, bool),
+                          "%s.value must be a number or a string" % at)
+                    textual[fi] = textual[fi] or isinstance(value, str)
+                    steps.append(("impute", value))
+                    continue
+                _need(op == "encode", "%s.op %r is not a step this scorer knows" % (at, op))
+                cats = _get(step, "categories", list, at)
+                _need(0 < len(cats) <= limits["max_categories"], "%s has no or too many categories" % at)
+                codes = {}
+                for code, c in enumerate(cats):
+                    _need(isinstance(c, (str, int, float)) and not isinstance(c, bool) and c not in codes,
+                          "%s.categories[%d] is not a new string or number" % (at, code))
+                    codes[c] = float(code)
+                    if isinstance(c, str):
+                        known[fi].add(c)
+                        textual[fi] = True
+                unknown = step.get("unknown")
+                _need(unknown == "error" or unknown is None or (isinstance(unknown, (int, float))
+                                                                and not isinstance(unknown, bool)),
+                      "%s.unknown must be \"error\", a number or null" % at)
+                unknown = _NAN if unknown is None else (unknown if unknown == "error" else float(unknown))
+                missing = step.get("missing", "unknown")
+                _need(missing in ("unknown", None) or (isinstance(missing, (int, float))
+                                                       and not isinstance(missing, bool)),
+                      "%s.missing must be a number or null" % at)
+                missing = missing if missing == "unknown" else (_NAN if missing is None else float(missing))
+                steps.append(("encode", codes, unknown, missing, cats))
+                self._unseen_missing[j] = True
+            self._sources.append((fi, tuple(steps)))
+        self._known_text = [set(k) for k in known]  # set: some MicroPython builds lack frozenset
+        self._textual = textual
+        # fields no feature reads (dropped by the preprocessing): may be absent, any type
+        self._used = [False] * len(fields)
+        for fi, _ in self._sources:
+            self._used[fi] = True
     def _read_outputs(self, outputs, limits):
         self.post_transform = _get(outputs, "post_transform", str, "outputs")
         _need(self.post_transform in _TRANSFORM_PARAMS, "unknown post_transform %r" % self.post_transform)
@@ -350,7 +636,7 @@ class Model:
                 order.append(child)
         _need(len(order) == n, "%s has unreachable nodes" % where)
         for key in cat_sets:
-            _need(key.isdigit() and int(key) < n and feature[int(key)] >= 0,
+            _need(key != "" and not key.strip("0123456789") and int(key) < n and feature[int(key)] >= 0,
                   "%s.left_categories names node %r, which is not a split" % (where, key))
         built = [None] * n
         for node in reversed(order):  # children before parents
@@ -373,7 +659,7 @@ class Model:
                 _need(isinstance(codes, list) and all(
                     isinstance(c, int) and not isinstance(c, bool) and 0 <= c < len(self.categories[f])
                     for c in codes), "%s.left_categories[%r] holds a bad category code" % (where, key))
-                built[node] = (f, _NAN, built[left[node]], built[right[node]], (missing_left, frozenset(codes)))
+                built[node] = (f, _NAN, built[left[node]], built[right[node]], (missing_left, set(codes)))
         return built[0], n, max(depth_of)
 
     # -- records -----------------------------------------------------------------
@@ -384,19 +670,25 @@ class Model:
         sequence in feature order. None or NaN means missing. Raises RecordError
         naming the row and the field.
         """
+        names = self.input_names
         if isinstance(record, dict):
             values = []
-            for name in self.feature_names:
+            for i, name in enumerate(names):
                 if name not in record:
+                    if not self._used[i]:
+                        values.append(None)  # the preprocessing drops this field
+                        continue
                     raise RecordError(row, name, "the field is absent (write null for a missing value)")
                 values.append(record[name])
         elif isinstance(record, (list, tuple)):
-            if len(record) != self.n_features:
+            if len(record) != len(names):
                 raise RecordError(row, None, "has %d values, the model takes %d (%s)"
-                                  % (len(record), self.n_features, ", ".join(self.feature_names)))
+                                  % (len(record), len(names), ", ".join(names)))
             values = record
         else:
             raise RecordError(row, None, "expected a dict or a sequence, got %s" % type(record).__name__)
+        if self._sources is not None:
+            values = [self._derive(j, values, row) for j in range(self.n_features)]
         x = []
         for i, v in enumerate(values):
             codes = self._codes[i]
@@ -405,6 +697,7 @@ class Model:
             else:
                 x.append(self._category(v, i, row))
         if self.compare_precision == "float32":
+            wide = x
             try:
                 x = list(struct.unpack("<%df" % len(x), struct.pack("<%df" % len(x), *x)))
             except OverflowError:
@@ -413,27 +706,64 @@ class Model:
                         struct.pack("<f", v)
                     except OverflowError:
                         if not self.accepts_infinity:
-                            raise RecordError(row, self.feature_names[i],
+                            raise RecordError(row, self._label[i],
                                               "%r is outside the float32 range this model compares in" % (v,))
                         x[i] = _INF if v > 0 else -_INF  # numpy's float32 cast overflows to infinity
                 x = list(struct.unpack("<%df" % len(x), struct.pack("<%df" % len(x), *x)))
+            if not self.accepts_infinity and (_INF in x or -_INF in x):
+                for i, v in enumerate(x):  # MicroPython's struct overflows to infinity, never raises
+                    if v == _INF or v == -_INF:
+                        raise RecordError(row, self._label[i],
+                                          "%r is outside the float32 range this model compares in" % (wide[i],))
         return x
+
+    def _derive(self, j, values, row):
+        """Feature ``j``'s value: its source field's value passed through its steps."""
+        fi, steps = self._sources[j]
+        v = values[fi]
+        for step in steps:
+            missing = v is None or (isinstance(v, float) and v != v)
+            if step[0] == "impute":
+                if missing:
+                    v = step[1]
+                continue
+            _, codes, unknown, missing_code, cats = step
+            if missing and missing_code != "unknown":
+                v = missing_code
+                continue
+            if not missing and (isinstance(v, bool) or not isinstance(v, (str, int, float))):
+                raise RecordError(row, self._label[j], "expected a category value, got %s" % type(v).__name__)
+            code = None if missing else codes.get(v)
+            if code is not None:
+                v = code
+                continue
+            if unknown == "error":
+                shown = ", ".join(repr(c) for c in cats[:20])
+                what = "a missing value, which the encoder was not fitted to accept" if missing else (
+                    "unknown category %r" % (v,))
+                raise RecordError(row, self._label[j], "%s (known: %s%s)" % (what, shown, ", ..." if len(cats) > 20
+                                                                              else ""))
+            v = unknown
+        return v
 
     def _numeric(self, v, i, row):
         if v is None:
             return self._missing(i, row)
         if isinstance(v, bool) or not isinstance(v, (int, float)):
-            raise RecordError(row, self.feature_names[i], "expected a number, got %s %r"
+            raise RecordError(row, self._label[i], "expected a number, got %s %r"
                               % (type(v).__name__, v))
         try:
-            v = float(v)
+            x = float(v)
         except OverflowError:  # an integer too large for a float
-            raise RecordError(row, self.feature_names[i], "%d is out of the float64 range" % v)
-        if v != v:
+            raise RecordError(row, self._label[i], "%d is out of the float64 range" % v)
+        if x != x:
             return self._missing(i, row)
-        if (v == _INF or v == -_INF) and not self.accepts_infinity:
-            raise RecordError(row, self.feature_names[i], "infinity is not accepted by this model")
-        return v
+        if x == _INF or x == -_INF:
+            if not isinstance(v, float):  # MicroPython turns a huge integer into infinity
+                raise RecordError(row, self._label[i], "%d is out of the float64 range" % v)
+            if not self.accepts_infinity:
+                raise RecordError(row, self._label[i], "infinity is not accepted by this model")
+        return x
 
     def _category(self, v, i, row):
         if v is None or (isinstance(v, float) and v != v):
@@ -441,25 +771,27 @@ class Model:
         code = self._codes[i].get(v) if not isinstance(v, bool) and isinstance(v, (str, int, float)) else None
         if code is None:
             if isinstance(v, bool) or not isinstance(v, (str, int, float)):
-                raise RecordError(row, self.feature_names[i], "expected a category value, got %s"
+                raise RecordError(row, self._label[i], "expected a category value, got %s"
                                   % type(v).__name__)
-            if self.unknown_category == "error":
+            if self.unknown_category == "error" and not self._unseen_missing[i]:
                 shown = ", ".join(repr(c) for c in self.categories[i][:20])
-                raise RecordError(row, self.feature_names[i], "unknown category %r (known: %s%s)"
+                raise RecordError(row, self._label[i], "unknown category %r (known: %s%s)"
                                   % (v, shown, ", ..." if len(self.categories[i]) > 20 else ""))
             return self._missing(i, row)
         return code
 
     def _missing(self, i, row):
         if self.missing_values == "reject":
-            raise RecordError(row, self.feature_names[i],
+            raise RecordError(row, self._label[i],
                               "the value is missing, and this model does not accept missing values")
         return _NAN
 
     def record_from_text(self, fields, row=None):
         """Turn a dict of strings (a CSV row) into a record: numbers parsed, missing tokens to None."""
         record = {}
-        for i, name in enumerate(self.feature_names):
+        for i, name in enumerate(self.input_names):
+            if not self._used[i]:
+                continue  # dropped by the preprocessing
             if name not in fields:
                 raise RecordError(row, name, "the column is absent")
             text = fields[name]
@@ -467,8 +799,7 @@ class Model:
                 record[name] = None
                 continue
             text = text.strip()
-            cats = self.categories[i]
-            if cats is not None and text in self._codes[i]:
+            if text in self._known_text[i]:
                 record[name] = text
                 continue
             try:
@@ -476,7 +807,7 @@ class Model:
                     raise ValueError(text)
                 record[name] = float(text)
             except ValueError:
-                if cats is None:
+                if not (self._textual[i] or (self._sources is None and self.categories[i] is not None)):
                     raise RecordError(row, name, "expected a number, got %r" % text)
                 record[name] = text  # an unknown category; prepare() decides what happens
         return record
@@ -655,7 +986,7 @@ class Model:
 def _exp(v):
     try:
         return math.exp(v)
-    except OverflowError:
+    except (OverflowError, ValueError):  # MicroPython raises ValueError on overflow
         return _INF
 
 

@@ -48,10 +48,18 @@ What it promises:
 The result is ``Counts(rows, scored, errors, first_error)``: rows read, rows
 scored, error rows, and the message of the first error row (or None).
 """
-import csv
 import json
 from collections import namedtuple
 from itertools import chain
+
+try:
+    import csv
+except ImportError:  # MicroPython has no csv module: JSON Lines only there
+    csv = None
+try:
+    RecursionError
+except NameError:  # MicroPython raises RuntimeError for too deep nesting
+    RecursionError = RuntimeError
 
 try:
     from .scorer import RecordError
@@ -105,6 +113,9 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
             break
     if fmt == "auto":
         fmt = "jsonl" if first is not None and first.lstrip().startswith("{") else "csv"
+    if csv is None and "csv" in (fmt, out_fmt):
+        raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
+                          "use JSON Lines")
     source = chain(head, lines)
     values = output_columns(model)
     if fmt == "csv":
@@ -180,17 +191,17 @@ def _csv_rows(model, source, id_column):
         raise StreamError("the id column %r is not in %s; its columns are: %s"
                           % (id_column, where_header, ", ".join(header)))
     id_name = id_column if id_column is not None else (DEFAULT_ID if DEFAULT_ID in header else None)
-    missing = [f for f in model.feature_names if f not in header]
+    missing = [f for i, f in enumerate(model.input_names) if f not in header and model._used[i]]
     if missing:
         raise StreamError("%s lacks the model's input column(s) %s; it has: %s"
                           % (where_header, ", ".join(repr(m) for m in missing), ", ".join(header)))
-    used = list(model.feature_names) + ([id_name] if id_name is not None else [])
+    used = [n for n in model.input_names if n in header] + ([id_name] if id_name is not None else [])
     repeated = sorted(set(u for u in used if header.count(u) > 1))
     if repeated:
         raise StreamError("%s repeats the column(s) %s" % (where_header, ", ".join(repr(r) for r in repeated)))
     index = dict((name, header.index(name)) for name in used)
     id_index = index.get(id_name) if id_name is not None else None
-    features = [(name, index[name]) for name in model.feature_names]
+    features = [(name, index[name]) for name in model.input_names if name in index]
     width = len(header)
 
     def rows():
@@ -320,11 +331,18 @@ class _Writer:
                 obj[name] = _json_value(v)
         obj[ERROR_COLUMN] = error
         try:
-            text = json.dumps(obj, ensure_ascii=False, allow_nan=False)
+            text = _dumps(obj)
         except ValueError:  # an id holding NaN or infinity (Python's json reads those)
             obj[self.id_name] = json.dumps(ident)
-            text = json.dumps(obj, ensure_ascii=False, allow_nan=False)
+            text = _dumps(obj)
         self.out.write(text + "\n")
+
+
+def _dumps(obj):
+    try:
+        return json.dumps(obj, ensure_ascii=False, allow_nan=False)
+    except TypeError:  # MicroPython's json.dumps takes no options
+        return json.dumps(obj)
 
 
 def _text(value):

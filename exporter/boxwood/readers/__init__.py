@@ -9,10 +9,10 @@ from __future__ import annotations
 from typing import Any
 
 from ..ir import Ensemble
-from . import sklearn_boosting, sklearn_forests
+from . import sklearn_boosting, sklearn_forests, sklearn_pipeline
 from .common import UnsupportedModel
 
-READERS = (sklearn_boosting.read, sklearn_forests.read)
+READERS = (sklearn_boosting.read, sklearn_forests.read, sklearn_pipeline.read)
 
 SUPPORTED = (
     "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
@@ -25,6 +25,7 @@ SUPPORTED = (
     "sklearn.tree.DecisionTreeClassifier / ExtraTreeClassifier (binary and multiclass)",
     "sklearn.ensemble.IsolationForest (score_samples, decision_function, predict)",
     "sklearn.ensemble.AdaBoostClassifier (SAMME, decision-tree base learners)",
+    "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(sklearn_pipeline.SUPPORTED_STEPS),
 )
 
 

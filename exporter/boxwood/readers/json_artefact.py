@@ -20,7 +20,8 @@ def _num(v: Any) -> float:
 def from_document(doc: Dict[str, Any]) -> Ensemble:
     """Map an artefact document (already verified by the device loader) onto an Ensemble."""
     inputs, outputs, ens = doc["inputs"], doc["outputs"], doc["ensemble"]
-    features = [Feature(f["name"], f["kind"], list(f["categories"]) if f["kind"] == "categorical" else None)
+    features = [Feature(f["name"], f["kind"], list(f["categories"]) if f["kind"] == "categorical" else None,
+                        f.get("source"))
                 for f in inputs["features"]]
     trees = []
     for t in ens["trees"]:
@@ -57,6 +58,7 @@ def from_document(doc: Dict[str, Any]) -> Ensemble:
         binary_rule=outputs.get("binary_rule"),
         output_names=list(outputs["names"]),
         accepts_infinity=inputs["accepts_infinity"],
+        fields=inputs.get("fields"),
         post_transform_params={k: _num(v) for k, v in outputs.get("post_transform_params", {}).items()},
         provenance=doc.get("provenance", {}),
         reference=reference,

@@ -37,6 +37,11 @@ def _cell(v: Any) -> Any:
     return v
 
 
+def _step(step: Dict[str, Any]) -> Dict[str, Any]:
+    """A preprocessing step as JSON: NaN (the encoder's NaN outputs) written as null."""
+    return {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in step.items()}
+
+
 def to_document(ensemble: Ensemble) -> Dict[str, Any]:
     """The artefact body (everything but the digest) for ``ensemble``."""
     ensemble.check()
@@ -45,6 +50,8 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         entry: Dict[str, Any] = {"name": f.name, "kind": f.kind}
         if f.is_categorical:
             entry["categories"] = list(f.categories)
+        if f.source is not None:
+            entry["source"] = {"field": f.source["field"], "steps": [_step(st) for st in f.source["steps"]]}
         features.append(entry)
     trees = []
     for t in ensemble.trees:
@@ -61,6 +68,15 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         if cats:
             tree["left_categories"] = cats
         trees.append(tree)
+    inputs: Dict[str, Any] = {
+        "features": features,
+        "compare_precision": ensemble.compare_precision,
+        "missing_values": ensemble.missing_values,
+        "accepts_infinity": ensemble.accepts_infinity,
+        "missing_tokens": list(MISSING_TOKENS),
+    }
+    if ensemble.fields is not None:
+        inputs["fields"] = list(ensemble.fields)
     outputs: Dict[str, Any] = {
         "post_transform": ensemble.post_transform,
         "names": list(ensemble.output_names) or ["output_%d" % i for i in range(ensemble.n_outputs)],
@@ -75,13 +91,7 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
         "task": ensemble.task,
-        "inputs": {
-            "features": features,
-            "compare_precision": ensemble.compare_precision,
-            "missing_values": ensemble.missing_values,
-            "accepts_infinity": ensemble.accepts_infinity,
-            "missing_tokens": list(MISSING_TOKENS),
-        },
+        "inputs": inputs,
         "outputs": outputs,
         "ensemble": {
             "combine": ensemble.combine,
