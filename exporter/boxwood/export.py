@@ -41,13 +41,16 @@ def build(model: Any, reference_rows: int = 6) -> Ensemble:
     return ensemble
 
 
-def export(model: Any, path: Union[str, Path], fmt: Optional[str] = None, reference_rows: int = 6) -> Ensemble:
-    """Export a fitted model to ``path``; the format follows the extension unless ``fmt`` says."""
+def export(model: Any, path: Union[str, Path], fmt: Optional[str] = None, reference_rows: int = 6,
+           **writer_options: Any) -> Ensemble:
+    """Export a fitted model to ``path``; the format follows the extension unless ``fmt`` says.
+
+    ``writer_options`` go to the writer (ONNX: ``input_type``, ``legacy``; docs/onnx.md)."""
     from .writers import WRITERS
 
     ext = ("." + fmt.lstrip(".")) if fmt else Path(path).suffix.lower()
     if ext not in WRITERS:
         raise ValueError("unknown artefact format %r; known: %s" % (ext, ", ".join(sorted(WRITERS))))
     ensemble = build(model, reference_rows)
-    WRITERS[ext](ensemble, path)
+    WRITERS[ext](ensemble, path, **writer_options)
     return ensemble

@@ -3,6 +3,7 @@
 A writer never imports scikit-learn. To add a target, add a module here with a
 ``write(ensemble, path)`` function and register its file extension in ``WRITERS``.
 """
-from . import json_artefact
+from . import json_artefact, onnx_writer
 
-WRITERS = {".json": json_artefact.write}
+# onnx_writer.write also takes input_type="float64"|"float32" and legacy=True (see docs/onnx.md).
+WRITERS = {".json": json_artefact.write, ".onnx": onnx_writer.write}

@@ -1,0 +1,1022 @@
+"""Read an ONNX graph whose core is a tree-ensemble operator into the hub.
+
+Accepted graphs (docs/onnx.md, "Reading ONNX files"): one graph input ``[N, F]`` of
+float or double; exactly one ai.onnx.ml tree operator -- ``TreeEnsemble`` (opset 5),
+``TreeEnsembleRegressor`` or ``TreeEnsembleClassifier`` (opsets 1 and 3); between
+the input and the operator only ``Cast``, ``Identity``, an ``Add`` of a constant
+(category-code offsets) and boxwood's "unknown code becomes NaN" ``Where`` step; after
+it only the output-shaping and post-transform ops listed in ``OUTPUT_OPS``. Anything
+else is refused with an error that names the node.
+
+What the graph says, the reader takes from the graph: the trees (every node mode is
+mapped onto the hub's ``x <= t`` rule exactly), the precision the trees compare in
+(float32 when the values reaching the trees are float32), base values, the
+post-transform (the operator's ``post_transform`` attribute or the ``Sigmoid`` /
+``Softmax`` / ``Exp`` ops after it), class labels and the binary decision rule. What
+it cannot say (feature names, category lists, missing-value policy, provenance and
+the source model's reference rows) comes from boxwood's metadata when present, and is
+cross-checked against the graph.
+
+Tree node numbering in the hub is canonical: depth first, the branch taken when
+``x <= t`` first. scikit-learn numbers its trees that way, so boxwood's own files
+read back to the very same trees (tests/test_onnx.py checks JSON -> ONNX -> hub ->
+JSON).
+
+This module also holds the ONNX evaluators used by tests and by the verifier:
+:class:`OnnxRuntimeEvaluator` (single-threaded, so sums are added in tree order) and
+:class:`OnnxReferenceEvaluator` (onnx.reference).
+"""
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
+
+import numpy as np
+
+from ..ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
+from .common import UnsupportedModel
+
+TREE_OPS = ("TreeEnsemble", "TreeEnsembleRegressor", "TreeEnsembleClassifier")
+ML_DOMAIN = "ai.onnx.ml"
+# Ops allowed after the tree operator (they shape outputs or apply the post-transform).
+OUTPUT_OPS = ("Identity", "Add", "Sub", "Mul", "Div", "Neg", "Sigmoid", "Softmax", "Exp", "Concat", "Greater",
+              "GreaterOrEqual", "Cast", "Reshape", "Squeeze", "Unsqueeze", "Flatten", "ArgMax", "Gather",
+              "ZipMap", "Constant")
+# Ops allowed before it: the value path, and the mask that marks unknown category codes.
+INPUT_PATH_OPS = ("Cast", "Identity", "Add", "Where")
+MASK_OPS = ("GreaterOrEqual", "LessOrEqual", "Floor", "Equal", "Or", "And", "Not", "IsNaN", "Greater",
+            "Less", "Constant", "Cast", "Identity")
+MAX_BYTES = 1 << 30
+META_PREFIX = "boxwood."
+
+
+class OnnxReadError(UnsupportedModel):
+    """The file is not an ONNX model boxwood can read; the message names the node."""
+
+
+# ----------------------------------------------------------------------------- loading
+def _onnx():
+    import onnx
+
+    return onnx
+
+
+def looks_like_onnx(path: Union[str, Path]) -> bool:
+    """True for a ``.onnx`` file, or a file whose bytes parse as an ONNX model with a graph.
+
+    Pickle and joblib files start with 0x80 or a compression header; an ONNX model
+    starts with field 1 (``ir_version``, tag byte 0x08)."""
+    path = Path(path)
+    if path.suffix.lower() == ".onnx":
+        return True
+    try:
+        with path.open("rb") as fh:
+            head = fh.read(1)
+    except OSError:
+        return False
+    if head != b"\x08":
+        return False
+    try:
+        model = _parse(path.read_bytes(), str(path))
+    except OnnxReadError:
+        return False
+    return len(model.graph.node) > 0
+
+
+def _parse(data: bytes, where: str) -> Any:
+    onnx = _onnx()
+    if len(data) > MAX_BYTES:
+        raise OnnxReadError("%s: larger than %d bytes" % (where, MAX_BYTES))
+    model = onnx.ModelProto()
+    try:
+        model.ParseFromString(data)
+    except Exception as exc:  # protobuf raises its own DecodeError
+        raise OnnxReadError("%s is not an ONNX model: the protobuf does not parse (%s: %s)"
+                            % (where, type(exc).__name__, exc))
+    if not model.HasField("graph") or not model.graph.node:
+        raise OnnxReadError("%s is not an ONNX model with a graph: it holds no graph nodes "
+                            "(truncated, damaged, or not an ONNX file)" % where)
+    return model
+
+
+def load(source: Any) -> Any:
+    """A checked ``onnx.ModelProto`` from a path, bytes or a ModelProto."""
+    onnx = _onnx()
+    if isinstance(source, onnx.ModelProto):
+        model, where = source, "the ONNX model"
+    elif isinstance(source, (bytes, bytearray)):
+        model, where = _parse(bytes(source), "the ONNX bytes"), "the ONNX bytes"
+    else:
+        where = str(source)
+        try:
+            with open(source, "rb") as fh:
+                data = fh.read(MAX_BYTES + 1)
+        except OSError as exc:
+            raise OnnxReadError("cannot read %s: %s" % (where, exc))
+        model = _parse(data, where)
+    try:
+        onnx.checker.check_model(model)
+    except Exception as exc:
+        raise OnnxReadError("%s fails onnx.checker: %s" % (where, str(exc).strip().splitlines()[0]))
+    return model
+
+
+# ----------------------------------------------------------------------------- graph helpers
+def _node_label(node: Any) -> str:
+    return "node %r (%s%s)" % (node.name or "<unnamed>", node.domain + "." if node.domain else "", node.op_type)
+
+
+class _Graph:
+    def __init__(self, model: Any):
+        onnx = _onnx()
+        self.onnx = onnx
+        g = model.graph
+        self.nodes = list(g.node)
+        self.consts: Dict[str, np.ndarray] = {t.name: onnx.numpy_helper.to_array(t) for t in g.initializer}
+        for n in self.nodes:
+            if n.op_type == "Constant" and n.domain in ("", "ai.onnx"):
+                attr = {a.name: a for a in n.attribute}
+                if "value" in attr:
+                    self.consts[n.output[0]] = onnx.numpy_helper.to_array(attr["value"].t)
+                elif "value_float" in attr:
+                    self.consts[n.output[0]] = np.asarray(attr["value_float"].f, dtype=np.float32)
+                elif "value_floats" in attr:
+                    self.consts[n.output[0]] = np.asarray(list(attr["value_floats"].floats), dtype=np.float32)
+                elif "value_int" in attr:
+                    self.consts[n.output[0]] = np.asarray(attr["value_int"].i, dtype=np.int64)
+                elif "value_ints" in attr:
+                    self.consts[n.output[0]] = np.asarray(list(attr["value_ints"].ints), dtype=np.int64)
+        self.producer = {o: n for n in self.nodes for o in n.output}
+        self.consumers: Dict[str, List[Any]] = {}
+        for n in self.nodes:
+            for i in n.input:
+                self.consumers.setdefault(i, []).append(n)
+        self.inputs = [i for i in g.input if i.name not in self.consts]
+        self.outputs = [o.name for o in g.output]
+
+    def attrs(self, node: Any) -> Dict[str, Any]:
+        return {a.name: self.onnx.helper.get_attribute_value(a) for a in node.attribute}
+
+    def const(self, name: str) -> Optional[np.ndarray]:
+        return self.consts.get(name)
+
+    def downstream(self, names: Sequence[str]) -> List[Any]:
+        seen, order, stack = set(), [], list(names)
+        while stack:
+            name = stack.pop()
+            for n in self.consumers.get(name, []):
+                if id(n) not in seen:
+                    seen.add(id(n))
+                    order.append(n)
+                    stack.extend(n.output)
+        return order
+
+    def upstream(self, names: Sequence[str]) -> List[Any]:
+        seen, order, stack = set(), [], list(names)
+        while stack:
+            name = stack.pop()
+            n = self.producer.get(name)
+            if n is not None and id(n) not in seen:
+                seen.add(id(n))
+                order.append(n)
+                stack.extend(n.input)
+        return order
+
+
+def _metadata(model: Any) -> Dict[str, Any]:
+    meta = {p.key: p.value for p in model.metadata_props}
+    out: Dict[str, Any] = {}
+    for key, value in meta.items():
+        if not key.startswith(META_PREFIX):
+            continue
+        try:
+            out[key] = json.loads(value)
+        except ValueError:
+            out[key] = value
+    return out
+
+
+# ----------------------------------------------------------------------------- input path
+class _InputPath:
+    """What happens to the values between the graph input and the tree operator."""
+
+    def __init__(self, graph: _Graph, tree: Any):
+        T = graph.onnx.TensorProto
+        if len(graph.inputs) != 1:
+            raise OnnxReadError("the graph has %d inputs (%s); boxwood reads graphs with one input [N, F]"
+                                % (len(graph.inputs), ", ".join(i.name for i in graph.inputs)))
+        gi = graph.inputs[0]
+        self.input_name = gi.name
+        self.input_type = gi.type.tensor_type.elem_type
+        if self.input_type not in (T.FLOAT, T.DOUBLE):
+            raise OnnxReadError("the graph input %r is of element type %s; boxwood reads float or double inputs"
+                                % (gi.name, T.DataType.Name(self.input_type)))
+        dims = gi.type.tensor_type.shape.dim
+        self.n_features = dims[1].dim_value if len(dims) == 2 and dims[1].HasField("dim_value") else None
+        self.float32 = self.input_type == T.FLOAT
+        self.offsets: Optional[np.ndarray] = None
+        self.sanitized = False
+        self.path_nodes: List[Any] = []
+        name = tree.input[0]
+        while name != self.input_name:
+            node = graph.producer.get(name)
+            if node is None:
+                raise OnnxReadError("the tree operator's input %r does not come from the graph input %r"
+                                    % (name, self.input_name))
+            self.path_nodes.append(node)
+            if node.op_type not in INPUT_PATH_OPS or node.domain not in ("", "ai.onnx"):
+                raise OnnxReadError("%s between the graph input and the tree operator is not supported "
+                                    "(allowed there: %s)" % (_node_label(node), ", ".join(INPUT_PATH_OPS)))
+            if node.op_type == "Cast":
+                to = graph.attrs(node).get("to")
+                if to == T.FLOAT:
+                    self.float32 = True
+                elif to != T.DOUBLE:
+                    raise OnnxReadError("%s casts to %s; only float and double are supported"
+                                        % (_node_label(node), T.DataType.Name(to)))
+                name = node.input[0]
+            elif node.op_type == "Identity":
+                name = node.input[0]
+            elif node.op_type == "Add":
+                a, b = node.input
+                if graph.const(b) is not None and graph.const(a) is None:
+                    value, name = graph.const(b), a
+                elif graph.const(a) is not None and graph.const(b) is None:
+                    value, name = graph.const(a), b
+                else:
+                    raise OnnxReadError("%s on the input path must add a constant" % _node_label(node))
+                if self.offsets is not None:
+                    raise OnnxReadError("%s: a second offset on the input path is not supported" % _node_label(node))
+                self.offsets = np.asarray(value, dtype=np.float64).ravel()
+            else:  # Where(condition, values, NaN): values failing the check become missing
+                cond, values, other = node.input
+                fill = graph.const(other)
+                if fill is None or fill.size != 1 or not np.isnan(np.asarray(fill, dtype=np.float64)).all():
+                    raise OnnxReadError("%s on the input path must replace values by a NaN constant"
+                                        % _node_label(node))
+                for m in graph.upstream([cond]):
+                    if m.op_type not in MASK_OPS and m not in self.path_nodes:
+                        if m.op_type in INPUT_PATH_OPS:
+                            continue
+                        raise OnnxReadError("%s in the input check is not supported" % _node_label(m))
+                self.sanitized = True
+                name = values
+
+    def offset(self, feature: int) -> float:
+        if self.offsets is None:
+            return 0.0
+        if self.offsets.size == 1:
+            return float(self.offsets[0])
+        return float(self.offsets[feature])
+
+
+# ----------------------------------------------------------------------------- the tree operator
+class _GenericTree:
+    """One tree in neutral form: node id -> leaf weights {target: value} or a split."""
+
+    def __init__(self, root: Any):
+        self.root = root
+        self.splits: Dict[Any, Tuple[str, int, Any, Any, Any, bool]] = {}  # mode, feature, value, true, false, nan_true
+        self.leaves: Dict[Any, Dict[int, float]] = {}
+
+
+def _tensor_or_list(attrs: Dict[str, Any], name: str) -> Optional[np.ndarray]:
+    onnx = _onnx()
+    if name + "_as_tensor" in attrs:
+        return np.asarray(onnx.numpy_helper.to_array(attrs[name + "_as_tensor"]), dtype=np.float64).ravel()
+    if name in attrs:
+        v = attrs[name]
+        if isinstance(v, onnx.TensorProto):
+            return np.asarray(onnx.numpy_helper.to_array(v), dtype=np.float64).ravel()
+        return np.asarray(list(v), dtype=np.float64)
+    return None
+
+
+_V5_MODES = {0: "BRANCH_LEQ", 1: "BRANCH_LT", 2: "BRANCH_GTE", 3: "BRANCH_GT", 4: "BRANCH_EQ", 5: "BRANCH_NEQ",
+             6: "BRANCH_MEMBER"}
+
+
+def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
+    where = _node_label(node)
+    need = ("nodes_featureids", "nodes_modes", "nodes_truenodeids", "nodes_falsenodeids", "nodes_trueleafs",
+            "nodes_falseleafs", "leaf_targetids", "leaf_weights", "tree_roots")
+    missing = [k for k in need if k not in a]
+    if missing:
+        raise OnnxReadError("%s lacks the attributes %s" % (where, ", ".join(missing)))
+    feats = list(a["nodes_featureids"])
+    modes = [int(m) for m in _tensor_or_list(a, "nodes_modes")]
+    splits = _tensor_or_list(a, "nodes_splits")
+    if splits is None:
+        splits = np.zeros(len(feats))
+    tids, fids = list(a["nodes_truenodeids"]), list(a["nodes_falsenodeids"])
+    tleaf, fleaf = list(a["nodes_trueleafs"]), list(a["nodes_falseleafs"])
+    miss = list(a.get("nodes_missing_value_tracks_true", [0] * len(feats)))
+    weights = _tensor_or_list(a, "leaf_weights")
+    targets = list(a["leaf_targetids"])
+    n = len(feats)
+    if not all(len(x) == n for x in (modes, splits, tids, fids, tleaf, fleaf, miss)) or len(weights) != len(targets):
+        raise OnnxReadError("%s: its node or leaf attributes have unequal lengths" % where)
+    members = _tensor_or_list(a, "membership_values")
+    sets: Dict[int, List[float]] = {}
+    if any(m == 6 for m in modes):
+        if members is None:
+            raise OnnxReadError("%s has BRANCH_MEMBER nodes but no membership_values" % where)
+        groups, current = [], []
+        for v in members:
+            if math.isnan(v):
+                groups.append(current)
+                current = []
+            else:
+                current.append(float(v))
+        if current:
+            groups.append(current)
+        member_nodes = [i for i, m in enumerate(modes) if m == 6]
+        if len(groups) != len(member_nodes):
+            raise OnnxReadError("%s: %d membership sets for %d BRANCH_MEMBER nodes"
+                                % (where, len(groups), len(member_nodes)))
+        sets = dict(zip(member_nodes, groups))
+    trees = []
+    for root in a["tree_roots"]:
+        if not 0 <= root < n:
+            raise OnnxReadError("%s: tree root %d out of range" % (where, root))
+        g = _GenericTree(("n", root))
+        if tleaf[root] and fleaf[root] and tids[root] == fids[root]:  # a tree that is one leaf
+            g.root = ("l", tids[root])
+        stack = [g.root]
+        seen = set()
+        while stack:
+            key = stack.pop()
+            if key in seen:
+                raise OnnxReadError("%s: tree rooted at node %d reaches %s %d twice (not a tree)"
+                                    % (where, root, "leaf" if key[0] == "l" else "node", key[1]))
+            seen.add(key)
+            kind, i = key
+            if kind == "l":
+                if not 0 <= i < len(weights):
+                    raise OnnxReadError("%s: leaf %d out of range" % (where, i))
+                g.leaves[key] = {int(targets[i]): float(weights[i])}
+                continue
+            if not 0 <= i < n:
+                raise OnnxReadError("%s: node %d out of range" % (where, i))
+            mode = _V5_MODES.get(modes[i])
+            if mode is None:
+                raise OnnxReadError("%s: node %d has the unknown mode %d" % (where, i, modes[i]))
+            value = sets.get(i) if mode == "BRANCH_MEMBER" else float(splits[i])
+            t = ("l" if tleaf[i] else "n", tids[i])
+            f = ("l" if fleaf[i] else "n", fids[i])
+            g.splits[key] = (mode, int(feats[i]), value, t, f, bool(miss[i]))
+            stack.extend((f, t))
+        trees.append(g)
+    return trees, int(a.get("n_targets", 1))
+
+
+def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, List[float]]:
+    where = _node_label(node)
+    classifier = node.op_type == "TreeEnsembleClassifier"
+    pre = "class" if classifier else "target"
+    need = ("nodes_treeids", "nodes_nodeids", "nodes_featureids", "nodes_modes", "nodes_truenodeids",
+            "nodes_falsenodeids", pre + "_treeids", pre + "_nodeids", pre + "_ids")
+    missing = [k for k in need if k not in a]
+    if missing:
+        raise OnnxReadError("%s lacks the attributes %s" % (where, ", ".join(missing)))
+    tree_ids, node_ids = list(a["nodes_treeids"]), list(a["nodes_nodeids"])
+    feats = list(a["nodes_featureids"])
+    modes = [m.decode() if isinstance(m, bytes) else str(m) for m in a["nodes_modes"]]
+    values = _tensor_or_list(a, "nodes_values")
+    if values is None:
+        values = np.zeros(len(feats))
+    tids, fids = list(a["nodes_truenodeids"]), list(a["nodes_falsenodeids"])
+    miss = list(a.get("nodes_missing_value_tracks_true", [0] * len(feats)))
+    n = len(tree_ids)
+    if not all(len(x) == n for x in (node_ids, feats, modes, values, tids, fids, miss)):
+        raise OnnxReadError("%s: its node attributes have unequal lengths" % where)
+    index = {}
+    order: List[int] = []
+    for i, (t, nid) in enumerate(zip(tree_ids, node_ids)):
+        if (t, nid) in index:
+            raise OnnxReadError("%s: tree %d lists node %d twice" % (where, t, nid))
+        index[(t, nid)] = i
+        if t not in order:
+            order.append(t)
+    w = _tensor_or_list(a, pre + "_weights")
+    w_tree, w_node, w_id = list(a[pre + "_treeids"]), list(a[pre + "_nodeids"]), list(a[pre + "_ids"])
+    if w is None or not len(w) == len(w_tree) == len(w_node) == len(w_id):
+        raise OnnxReadError("%s: its %s_* attributes have unequal lengths" % (where, pre))
+    leaf_weights: Dict[Tuple[int, int], Dict[int, float]] = {}
+    for t, nid, k, v in zip(w_tree, w_node, w_id, w):
+        entry = leaf_weights.setdefault((t, nid), {})
+        if int(k) in entry:
+            raise OnnxReadError("%s: leaf %d of tree %d has two weights for target %d" % (where, nid, t, k))
+        entry[int(k)] = float(v)
+    trees = []
+    for t in order:
+        root = min(i for i, tt in enumerate(tree_ids) if tt == t)
+        g = _GenericTree(("n", node_ids[root]))
+        stack, seen = [node_ids[root]], set()
+        while stack:
+            nid = stack.pop()
+            if nid in seen:
+                raise OnnxReadError("%s: tree %d reaches node %d twice (not a tree)" % (where, t, nid))
+            seen.add(nid)
+            i = index.get((t, nid))
+            if i is None:
+                raise OnnxReadError("%s: tree %d refers to node %d, which it does not list" % (where, t, nid))
+            if modes[i] == "LEAF":
+                g.leaves[("n", nid)] = leaf_weights.get((t, nid), {})
+                continue
+            if modes[i] not in _V5_MODES.values():
+                raise OnnxReadError("%s: tree %d node %d has the unknown mode %r" % (where, t, nid, modes[i]))
+            g.splits[("n", nid)] = (modes[i], int(feats[i]), float(values[i]), ("n", tids[i]), ("n", fids[i]),
+                                    bool(miss[i]))
+            stack.extend((fids[i], tids[i]))
+        trees.append(g)
+    base = _tensor_or_list(a, "base_values")
+    if classifier:
+        labels = a.get("classlabels_int64s") or a.get("classlabels_strings")
+        n_targets = len(labels) if labels else 0
+        used = {k for d in leaf_weights.values() for k in d}
+        if labels is not None and len(labels) == 2 and used <= {0, 1} and len(used) <= 1:
+            n_targets = 1
+    else:
+        n_targets = int(a.get("n_targets", 1))
+    return trees, n_targets, [float(b) for b in base] if base is not None else []
+
+
+# ----------------------------------------------------------------------------- into the hub
+def _before(t: float) -> float:
+    return float(np.nextafter(t, -np.inf))
+
+
+def _to_ir_trees(generic: List[_GenericTree], n_targets: int, path: _InputPath, where: str,
+                 n_features: int) -> Tuple[List[Tree], Dict[int, int]]:
+    """Neutral trees -> hub trees (one per target a tree feeds), and the largest category
+    code seen per categorical feature."""
+    kinds: Dict[int, str] = {}
+    max_code: Dict[int, int] = {}
+    out: List[Tree] = []
+
+    def mark(feature: int, kind: str, key: Any) -> None:
+        if not 0 <= feature < n_features:
+            raise OnnxReadError("%s: node %s splits on feature %d, but the input has %d columns"
+                                % (where, key[1], feature, n_features))
+        if kinds.setdefault(feature, kind) != kind:
+            raise OnnxReadError("%s: feature %d is split both by value and by category (node %s)"
+                                % (where, feature, key[1]))
+
+    def codes_of(values: Sequence[float], feature: int, key: Any) -> Tuple[int, ...]:
+        offset = path.offset(feature)
+        codes = set()
+        for v in values:
+            c = v - offset
+            if c < 0 and offset > 0:
+                continue  # below every shifted code: matches no input (boxwood's empty-set marker)
+            if c != int(c) or c < 0:
+                raise OnnxReadError("%s: node %s tests category value %r, which is not a code 0, 1, 2, ..."
+                                    % (where, key[1], v))
+            codes.add(int(c))
+        if codes:
+            max_code[feature] = max(max_code.get(feature, -1), max(codes))
+        return tuple(sorted(codes))
+
+    for g in generic:
+        feature, threshold, left, right, missing, leaf_of, cats = [], [], [], [], [], [], []
+        index: Dict[Any, int] = {}
+        stack = [g.root]
+        while stack:  # depth first, the "x <= t" branch first
+            key = stack.pop()
+            index[key] = len(feature)
+            if key in g.leaves:
+                feature.append(LEAF)
+                threshold.append(0.0)
+                left.append(LEAF)
+                right.append(LEAF)
+                missing.append(False)
+                leaf_of.append(key)
+                cats.append(None)
+                continue
+            mode, f, value, t, fa, nan_true = g.splits[key]
+            if mode in ("BRANCH_LEQ", "BRANCH_LT", "BRANCH_GTE", "BRANCH_GT"):
+                mark(f, "numeric", key)
+                if mode in ("BRANCH_LT", "BRANCH_GTE"):
+                    if value == -math.inf:
+                        raise OnnxReadError("%s: node %s compares with %s -inf, which boxwood cannot state as "
+                                            "x <= t" % (where, key[1], mode))
+                    value = _before(value)
+                if math.isnan(value):
+                    raise OnnxReadError("%s: node %s has a NaN threshold" % (where, key[1]))
+                first, second, nan_left = (t, fa, nan_true) if mode in ("BRANCH_LEQ", "BRANCH_LT") \
+                    else (fa, t, not nan_true)
+                threshold.append(float(value))
+                cats.append(None)
+            else:
+                mark(f, "categorical", key)
+                members = value if mode == "BRANCH_MEMBER" else [value]
+                first, second, nan_left = (t, fa, nan_true) if mode != "BRANCH_NEQ" else (fa, t, not nan_true)
+                threshold.append(0.0)
+                cats.append(codes_of(members, f, key))
+            feature.append(f)
+            missing.append(bool(nan_left))
+            leaf_of.append(None)
+            left.append((first,))
+            right.append((second,))
+            stack.append(second)
+            stack.append(first)
+        left = [index[c[0]] if isinstance(c, tuple) else c for c in left]
+        right = [index[c[0]] if isinstance(c, tuple) else c for c in right]
+        used = sorted({k for key in leaf_of if key is not None for k in g.leaves[key]})
+        for k in used or [0]:
+            if not 0 <= k < n_targets:
+                raise OnnxReadError("%s: a leaf adds to target %d, but there are %d targets" % (where, k, n_targets))
+            value = [g.leaves[key].get(k, 0.0) if key is not None else 0.0 for key in leaf_of]
+            out.append(Tree(k, list(feature), list(threshold), list(left), list(right), list(missing), value,
+                            list(cats)))
+    return out, {f: max_code.get(f, 0) for f, kind in kinds.items() if kind == "categorical"}
+
+
+def _classes_from(values: Any) -> List[Any]:
+    out = []
+    for v in np.asarray(values).ravel():
+        if isinstance(v, bytes):
+            v = v.decode("utf-8")
+        elif hasattr(v, "item"):
+            v = v.item()
+        out.append(v)
+    return out
+
+
+def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
+    """Post-transform, task, classes, binary rule and raw-score adjustments after the tree."""
+    where = _node_label(tree)
+    info: Dict[str, Any] = {"post": None, "classes": None, "binary_rule": None, "divide": None, "add": None}
+    tree_post = attrs.get("post_transform", "NONE" if tree.op_type != "TreeEnsemble" else 0)
+    if isinstance(tree_post, bytes):
+        tree_post = tree_post.decode()
+    tree_post = {0: "NONE", 1: "SOFTMAX", 2: "LOGISTIC", 3: "SOFTMAX_ZERO", 4: "PROBIT"}.get(tree_post, tree_post)
+    if tree_post not in ("NONE", "LOGISTIC", "SOFTMAX"):
+        raise OnnxReadError("%s applies post_transform %s, which boxwood does not support" % (where, tree_post))
+    if tree.op_type == "TreeEnsemble" and attrs.get("aggregate_function", 1) != 1:
+        raise OnnxReadError("%s aggregates with function %r; boxwood reads SUM" % (where, attrs["aggregate_function"]))
+    if tree.op_type != "TreeEnsemble":
+        agg = attrs.get("aggregate_function", b"SUM")
+        agg = agg.decode() if isinstance(agg, bytes) else agg
+        if agg not in ("SUM", "AVERAGE"):
+            raise OnnxReadError("%s aggregates with %s; boxwood reads SUM and AVERAGE" % (where, agg))
+        info["average"] = agg == "AVERAGE"
+    down = graph.downstream(list(tree.output))
+    for n in down:
+        if n.op_type not in OUTPUT_OPS or n.domain not in ("", "ai.onnx", ML_DOMAIN) or \
+                (n.domain == ML_DOMAIN and n.op_type != "ZipMap"):
+            raise OnnxReadError("%s after the tree operator is not supported (allowed there: %s)"
+                                % (_node_label(n), ", ".join(OUTPUT_OPS)))
+    # raw = tree output, then (ours, combine "mean") Div by constant tree counts, then Add base
+    raw = tree.output[0] if tree.op_type != "TreeEnsembleClassifier" else None
+    if raw is not None and tree_post == "NONE":
+        for step in ("Div", "Add"):
+            users = graph.consumers.get(raw, [])
+            arith = [u for u in users if u.op_type == step]
+            if len(arith) == 1 and len(users) == 1:
+                u = arith[0]
+                other = u.input[1] if u.input[0] == raw else u.input[0]
+                c = graph.const(other)
+                if c is None or (step == "Div" and u.input[0] != raw):
+                    raise OnnxReadError("%s must %s a constant" % (_node_label(u), step.lower()))
+                info["divide" if step == "Div" else "add"] = np.asarray(c, dtype=np.float64).ravel()
+                raw = u.output[0]
+    info["raw"] = raw
+    transforms = {"Exp": "exp", "Sigmoid": "logistic", "Softmax": "softmax"}
+    found = set()
+    for n in down:
+        if n.op_type in transforms:
+            kind = transforms[n.op_type]
+            src = graph.producer.get(n.input[0])
+            if kind == "exp" and src is not None and src.op_type == "Neg":
+                # 1 / (1 + Exp(Neg(x))): the logistic written out (boxwood's exact graphs)
+                kind = "logistic"
+                src = graph.producer.get(src.input[0])
+            if kind == "logistic" and src is not None and src.op_type == "Mul":
+                factors = [graph.const(i) for i in src.input if graph.const(i) is not None]
+                if len(factors) == 1 and np.asarray(factors[0]).size == 1 and float(np.asarray(factors[0]).ravel()[0]) == 2.0:
+                    kind = "logistic_double"
+                else:
+                    raise OnnxReadError("%s scales the raw score before the logistic by something other than 2"
+                                        % _node_label(src))
+            found.add(kind)
+    if tree_post != "NONE":
+        if found:
+            raise OnnxReadError("%s applies %s and the graph applies %s after it; boxwood reads one post-transform"
+                                % (where, tree_post, ", ".join(sorted(found))))
+        found.add({"LOGISTIC": "logistic", "SOFTMAX": "softmax"}[tree_post])
+    if len(found) > 1:
+        raise OnnxReadError("the graph applies several post-transforms (%s) after %s" % (", ".join(sorted(found)), where))
+    info["post"] = found.pop() if found else "identity"
+    # classes and the binary rule
+    if tree.op_type == "TreeEnsembleClassifier":
+        labels = attrs.get("classlabels_int64s") or attrs.get("classlabels_strings")
+        if not labels:
+            raise OnnxReadError("%s lists no class labels" % where)
+        info["classes"] = _classes_from(labels)
+        info["binary_rule"] = "raw_gt_0"
+    else:
+        for n in down:
+            if n.op_type == "Gather" and graph.const(n.input[0]) is not None and n.output[0] in graph.outputs:
+                info["classes"] = _classes_from(graph.const(n.input[0]))
+            if n.op_type in ("Greater", "GreaterOrEqual") and raw in n.input:
+                c = graph.const(n.input[1])
+                if c is None or np.asarray(c).size != 1 or float(np.asarray(c).ravel()[0]) != 0.0:
+                    raise OnnxReadError("%s must compare the raw score with the constant 0" % _node_label(n))
+                info["binary_rule"] = "raw_gt_0" if n.op_type == "Greater" else "raw_ge_0"
+    return info
+
+
+def read_onnx(source: Any) -> Ensemble:
+    """Read an ONNX tree-ensemble graph (path, bytes or ModelProto) into an Ensemble."""
+    model = load(source)
+    graph = _Graph(model)
+    trees = [n for n in graph.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN]
+    if not trees:
+        ops = ", ".join(_node_label(n) for n in graph.nodes[:12]) + (", ..." if len(graph.nodes) > 12 else "")
+        raise OnnxReadError("the graph has no tree-ensemble operator (ai.onnx.ml %s); its nodes: %s"
+                            % (", ".join(TREE_OPS), ops))
+    if len(trees) > 1:
+        raise OnnxReadError("the graph has %d tree-ensemble operators (%s); boxwood reads graphs with one"
+                            % (len(trees), ", ".join(_node_label(n) for n in trees)))
+    tree = trees[0]
+    where = _node_label(tree)
+    path = _InputPath(graph, tree)
+    related = set(id(n) for n in graph.upstream(list(tree.input))) | set(id(n) for n in graph.downstream(list(tree.output)))
+    related.add(id(tree))
+    for n in graph.nodes:
+        if id(n) not in related and not (n.op_type == "Constant" and n.domain in ("", "ai.onnx")):
+            raise OnnxReadError("%s is not connected to the tree operator; boxwood reads graphs that only "
+                                "prepare the input, run the trees and shape the outputs" % _node_label(n))
+    attrs = graph.attrs(tree)
+    meta = _metadata(model)
+    semantics = meta.get("boxwood.semantics") if isinstance(meta.get("boxwood.semantics"), dict) else {}
+    names = meta.get("boxwood.feature_names")
+    if tree.op_type == "TreeEnsemble":
+        generic, n_targets = _trees_v5(tree, attrs)
+        op_base: List[float] = []
+    else:
+        generic, n_targets, op_base = _trees_v3(tree, attrs)
+    n_features = path.n_features or (len(names) if isinstance(names, list) else None)
+    if n_features is None:
+        n_features = 1 + max([s[1] for g in generic for s in g.splits.values()] or [0])
+    info = _outputs(graph, tree, attrs)
+    ir_trees, max_code = _to_ir_trees(generic, max(n_targets, 1), path, where, n_features)
+
+    # base values: the operator's, boxwood's leading single-leaf trees, an Add after the trees
+    k = max(n_targets, 1)
+    base = list(op_base) if op_base else [0.0] * k
+    if len(base) != k:
+        raise OnnxReadError("%s has %d base values for %d targets" % (where, len(base), k))
+    leading = int(semantics.get("leading_base_trees", 0) or 0)
+    if leading:
+        if leading != k or len(ir_trees) < k:
+            raise OnnxReadError("metadata boxwood.semantics says %d leading base-value trees; the graph has %d targets"
+                                % (leading, k))
+        for j in range(k):
+            t = ir_trees[j]
+            if t.n_nodes != 1 or t.output != j:
+                raise OnnxReadError("%s: tree %d should hold the base value of output %d (boxwood metadata) but "
+                                    "is not a single leaf for that output" % (where, j, j))
+            base[j] = t.value[0]
+        ir_trees = ir_trees[k:]
+    combine = "sum"
+    if info["divide"] is not None or info.get("average"):
+        combine = "mean"
+        counts = [sum(1 for t in ir_trees if t.output == j) for j in range(k)]
+        if info["divide"] is not None:
+            want = np.asarray([max(c, 1) for c in counts], dtype=np.float64)
+            got = np.broadcast_to(info["divide"], want.shape) if info["divide"].size in (1, k) else None
+            if got is None or not np.array_equal(got, want):
+                raise OnnxReadError("the graph divides the tree sum by %r, not by the number of trees per output %r"
+                                    % (info["divide"].tolist(), want.tolist()))
+        elif any(c != len(generic) for c in counts):
+            # AVERAGE divides every target's sum by the number of trees of the operator
+            raise OnnxReadError("%s averages over all its trees, but not every tree adds to every target; "
+                                "boxwood cannot state that as a mean per output" % where)
+    if info["add"] is not None:
+        add = np.broadcast_to(info["add"], (k,)) if info["add"].size in (1, k) else None
+        if add is None:
+            raise OnnxReadError("the base values added after %s do not match its %d targets" % (where, k))
+        base = [float(b + a) for b, a in zip(base, add)]
+
+    # task, classes and the binary rule
+    classes = info["classes"]
+    task = "classification" if classes is not None else "regression"
+    binary_rule = None
+    post = info["post"]
+    if task == "classification" and k == 1:
+        binary_rule = info["binary_rule"] or "raw_gt_0"
+        if post == "identity":
+            raise OnnxReadError("%s: a binary classifier with one raw score needs a logistic post-transform" % where)
+    if semantics:
+        for key, value in (("task", task), ("post_transform", post), ("binary_rule", binary_rule),
+                           ("combine", combine)):
+            stated = semantics.get(key)
+            if stated is not None and stated != value:
+                raise OnnxReadError("metadata boxwood.semantics says %s=%r but the graph does %r"
+                                    % (key, stated, value))
+        if semantics.get("classes") is not None and classes is not None and semantics["classes"] != classes:
+            raise OnnxReadError("metadata boxwood.semantics lists classes %r but the graph's labels are %r"
+                                % (semantics["classes"], classes))
+        if semantics.get("classes") is not None:
+            classes = semantics["classes"]  # keeps label types JSON can tell apart (e.g. 1 vs 1.0)
+
+    # features
+    if not isinstance(names, list) or len(names) != n_features:
+        names = ["x%d" % i for i in range(n_features)]
+    categories_meta = meta.get("boxwood.categories") if isinstance(meta.get("boxwood.categories"), dict) else {}
+    features = []
+    for i, name in enumerate(names):
+        if i in max_code:
+            cats = categories_meta.get(name)
+            if not isinstance(cats, list) or len(cats) <= max_code[i]:
+                cats = list(range(max_code[i] + 1))
+            features.append(Feature(str(name), "categorical", list(cats)))
+        else:
+            features.append(Feature(str(name)))
+
+    compare = "float32" if path.float32 else "float64"
+    exact_source = (semantics.get("variant") == "exact" and semantics.get("input_type") == "float64"
+                    and semantics.get("compare_precision") == compare)
+    provenance = meta.get("boxwood.provenance") if isinstance(meta.get("boxwood.provenance"), dict) else {}
+    provenance = dict(provenance)
+    provenance.setdefault("estimator", meta.get("boxwood.source_estimator") or "onnx:%s" % tree.op_type)
+    provenance["onnx"] = {"producer": "%s %s" % (model.producer_name, model.producer_version),
+                          "tree_operator": tree.op_type,
+                          "opsets": {o.domain or "ai.onnx": o.version for o in model.opset_import}}
+    output_names = semantics.get("output_names") if isinstance(semantics.get("output_names"), list) else None
+    if not output_names or len(output_names) != k:
+        output_names = ([str(c) for c in classes] if classes is not None and k == len(classes)
+                        else [str(classes[1])] if classes is not None else
+                        ["prediction"] if k == 1 else ["output_%d" % j for j in range(k)])
+    missing_values = semantics.get("missing_values", "route") if exact_source else "route"
+    ensemble = Ensemble(
+        task=task,
+        features=features,
+        trees=ir_trees,
+        base_values=[float(b) for b in base],
+        post_transform=post,
+        combine=combine,
+        compare_precision=compare,
+        missing_values=missing_values if missing_values in ("route", "reject") else "route",
+        classes=classes,
+        binary_rule=binary_rule,
+        output_names=[str(o) for o in output_names],
+        accepts_infinity=bool(semantics.get("accepts_infinity", True)) if exact_source else True,
+        provenance=provenance,
+    )
+    ref = meta.get("boxwood.reference")
+    if exact_source and isinstance(ref, dict):
+        ensemble.reference = Reference(
+            rows=[[None if v is None else (float(v) if v in ("inf", "-inf") else v) for v in row] for row in ref["rows"]],
+            raw=[[float(v) for v in r] for r in ref["raw"]],
+            transformed=[[float(v) for v in r] for r in ref["transformed"]],
+        )
+    try:
+        return ensemble.check()
+    except ModelError as exc:
+        raise OnnxReadError("%s does not make a valid tree ensemble: %s" % (where, exc))
+
+
+def read_file(path: Union[str, Path], reference_rows: int = 6) -> Ensemble:
+    """Read an ONNX file; make sure it carries reference rows (the source model's, from
+    boxwood metadata, else the hub's own scores on probe rows -- stated in provenance)."""
+    ensemble = read_onnx(path)
+    if ensemble.reference is None:
+        attach_own_reference(ensemble, reference_rows)
+    return ensemble
+
+
+def attach_own_reference(ensemble: Ensemble, n_rows: int = 6) -> None:
+    """Reference rows scored by the hub itself (the device scorer on this ensemble), for
+    ONNX files that do not carry their source model's numbers."""
+    from boxwood_runtime import scorer
+
+    from ..source import probe_rows
+    from ..writers.json_artefact import to_document
+
+    rows = probe_rows(ensemble, n_rows)
+    doc = to_document(ensemble)
+    model = scorer.Model(doc, dict(scorer.DEFAULT_LIMITS), unknown_category="as_missing")
+    raw, transformed = [], []
+    for i, row in enumerate(rows):
+        r = model.raw_scores(model.prepare(row, i))
+        raw.append(list(model.exact_values(r)) if hasattr(model, "exact_values") else r)
+        transformed.append(model.transform_raw(r))
+    ensemble.reference = Reference(rows=rows, raw=raw, transformed=transformed)
+    ensemble.provenance["reference_rows"] = ("scored by boxwood's device scorer from the ONNX graph's trees "
+                                             "(the file carries no source-model numbers)")
+
+
+# ----------------------------------------------------------------------------- evaluators
+def rows_to_matrix(ensemble: Ensemble, rows: Sequence[Sequence[Any]], dtype: Any = np.float64) -> np.ndarray:
+    """Rows in feature order (numbers, category values, None) as the graph's input: NaN
+    for missing, the category's code for a categorical value (NaN for an unseen one)."""
+    codes = [None if not f.is_categorical else {c: i for i, c in enumerate(f.categories)} for f in ensemble.features]
+    out = np.empty((len(rows), len(ensemble.features)), dtype=np.float64)
+    for i, row in enumerate(rows):
+        for j, v in enumerate(row):
+            if v is None:
+                out[i, j] = np.nan
+            elif codes[j] is not None and not (isinstance(v, float) and math.isnan(v)):
+                out[i, j] = codes[j].get(v, np.nan)
+            else:
+                out[i, j] = float(v)
+    with np.errstate(over="ignore"):
+        return out.astype(dtype)
+
+
+def _tree_value_type(graph: _Graph, tree: Any, path: _InputPath) -> int:
+    """Element type of the values the tree operator receives."""
+    for node in path.path_nodes:  # nearest the tree first
+        if node.op_type == "Cast":
+            return graph.attrs(node)["to"]
+    return path.input_type
+
+
+def _expose_raw(model: Any) -> Tuple[Any, bool]:
+    """A copy of ``model`` with an output ``raw_score`` holding the raw scores (before any
+    post-transform), and whether the raw scores are column 1 of a binary classifier's
+    two-column score output (onnxruntime lays a binary TreeEnsembleClassifier's scores
+    out as [-s, s] when post_transform is NONE)."""
+    onnx = _onnx()
+    graph = _Graph(model)
+    if RAW_OUTPUT in graph.outputs:
+        return model, False
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    g = _Graph(copy)
+    tree = [n for n in g.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN][0]
+    T = onnx.TensorProto
+    binary_column = False
+    for a in tree.attribute:
+        if a.name == "post_transform":
+            if a.type == onnx.AttributeProto.STRING:
+                a.s = b"NONE"
+            else:
+                a.i = 0
+    if tree.op_type == "TreeEnsembleClassifier":
+        source, elem = tree.output[1], T.FLOAT
+        attrs = g.attrs(tree)
+        labels = attrs.get("classlabels_int64s") or attrs.get("classlabels_strings")
+        used = set(attrs.get("class_ids", []))
+        binary_column = bool(labels) and len(labels) == 2 and len(used) <= 1
+    else:
+        info = _outputs(g, tree, g.attrs(tree))
+        source = info["raw"]
+        elem = T.FLOAT if tree.op_type != "TreeEnsemble" else _tree_value_type(g, tree, _InputPath(g, tree))
+    copy.graph.node.append(onnx.helper.make_node("Identity", [source], [RAW_OUTPUT], name="boxwood_raw_score"))
+    copy.graph.output.append(onnx.helper.make_tensor_value_info(RAW_OUTPUT, elem, None))
+    return copy, binary_column
+
+
+RAW_OUTPUT = "raw_score"
+
+
+class _OnnxEvaluator:
+    """Shared part: rows -> input matrix -> named outputs, in the verifier's evaluator
+    contract (boxwood.verify.evaluators: ``name``, ``evaluate(rows)`` and the precision
+    properties; ``raw``, ``transformed`` and ``labels`` too)."""
+
+    name = "onnx"
+    compare_precision = None  # compares as the ensemble read from the file states
+    transform_implementation = "ONNX operators Sigmoid / Softmax / Exp"
+
+    def __init__(self, model: Any, ensemble: Optional[Ensemble] = None):
+        self.model = model if hasattr(model, "graph") else load(model)
+        self.ensemble = ensemble if ensemble is not None else read_onnx(self.model)
+        graph = _Graph(self.model)
+        T = _onnx().TensorProto
+        gi = graph.inputs[0]
+        tree = [n for n in graph.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN][0]
+        self.input_name = gi.name
+        self.dtype = np.float32 if gi.type.tensor_type.elem_type == T.FLOAT else np.float64
+        self.input_precision = "float32" if self.dtype == np.float32 else "float64"
+        value_type = _tree_value_type(graph, tree, _InputPath(graph, tree))
+        exact_op = tree.op_type == "TreeEnsemble" and value_type == T.DOUBLE
+        self.summation_precision = "float64" if exact_op else "float32"
+        semantics = _metadata(self.model).get("boxwood.semantics")
+        leading = isinstance(semantics, dict) and semantics.get("leading_base_trees")
+        # Base value first, then the trees in order: boxwood's exact graphs (the base value
+        # is a leading tree); opset-3 operators add base_values after the trees.
+        self.summation_order = "tree" if (exact_op and (leading or self.ensemble.base_values == [0.0] * len(
+            self.ensemble.base_values))) else "any"
+        self.output_names = [o.name for o in self.model.graph.output]
+        self.raw_model, self._binary_column = _expose_raw(self.model)
+
+    def properties(self) -> Dict[str, Any]:
+        return {"input_precision": self.input_precision, "compare_precision": self.compare_precision,
+                "summation_order": self.summation_order, "summation_precision": self.summation_precision,
+                "transform_implementation": self.transform_implementation}
+
+    def matrix(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
+        return rows_to_matrix(self.ensemble, rows, self.dtype)
+
+    def run(self, rows: Sequence[Sequence[Any]]) -> Dict[str, np.ndarray]:
+        """All graph outputs (and ``raw_score``) for ``rows``, by output name."""
+        X = self.matrix(rows)
+        out = dict(zip(self.output_names, self._run(self.model, X, self.output_names)))
+        if RAW_OUTPUT not in out:
+            raw = self._run(self.raw_model, X, [RAW_OUTPUT])[0]
+            out[RAW_OUTPUT] = raw[:, 1:] if self._binary_column else raw
+        return out
+
+    def _run(self, model: Any, X: np.ndarray, names: List[str]) -> List[np.ndarray]:
+        raise NotImplementedError
+
+    def _split(self, out: Dict[str, np.ndarray], n: int) -> Tuple[np.ndarray, np.ndarray, Optional[List[Any]]]:
+        raw = np.asarray(out[RAW_OUTPUT], dtype=np.float64).reshape(n, -1)
+        e = self.ensemble
+        if e.task == "classification":
+            probs = [v for k, v in out.items() if k != RAW_OUTPUT and np.asarray(v).dtype.kind == "f"
+                     and np.asarray(v).ndim == 2]
+            p = np.asarray(out.get("probabilities", probs[0] if probs else raw), dtype=np.float64).reshape(n, -1)
+            transformed = p[:, 1:] if e.n_outputs == 1 and p.shape[1] == 2 else p
+            label_out = out.get("label")
+            if label_out is None:
+                label_out = next(v for k, v in out.items() if np.asarray(v).ndim == 1)
+            return raw, transformed, _classes_from(label_out)
+        pred = out.get("prediction")
+        if pred is None:
+            pred = next(v for k, v in out.items() if k != RAW_OUTPUT)
+        return raw, np.asarray(pred, dtype=np.float64).reshape(n, -1), None
+
+    def evaluate(self, rows: Sequence[Sequence[Any]]) -> Any:
+        """(raw, transformed, labels) as the verifier's ``Outputs``."""
+        raw, transformed, labels = self._split(self.run(rows), len(rows))
+        try:
+            from ..verify.evaluators import Outputs
+        except ImportError:  # the verifier is optional here
+            return raw, transformed, labels
+        return Outputs(raw, transformed, labels)
+
+    def raw(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
+        """Raw scores (n_rows, n_outputs) as float64."""
+        return self._split(self.run(rows), len(rows))[0]
+
+    def transformed(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
+        """The prediction, or the class probabilities (positive class only for a binary
+        classifier with one raw output), float64, (n_rows, n)."""
+        return self._split(self.run(rows), len(rows))[1]
+
+    def labels(self, rows: Sequence[Sequence[Any]]) -> Optional[List[Any]]:
+        return self._split(self.run(rows), len(rows))[2]
+
+
+class OnnxRuntimeEvaluator(_OnnxEvaluator):
+    """onnxruntime, one thread: its tree operator then adds trees in tree order (with
+    more threads it splits the trees into groups and adds the group sums, which
+    changes the last bits; docs/onnx.md)."""
+
+    name = "onnxruntime"
+    transform_implementation = "onnxruntime kernels (Sigmoid, Softmax, Exp)"
+
+    def __init__(self, model: Any, ensemble: Optional[Ensemble] = None):
+        super().__init__(model, ensemble)
+        self._sessions: Dict[int, Any] = {}
+
+    def _session(self, model: Any) -> Any:
+        import onnxruntime as ort
+
+        if id(model) not in self._sessions:
+            options = ort.SessionOptions()
+            options.intra_op_num_threads = 1
+            options.inter_op_num_threads = 1
+            options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+            options.log_severity_level = 3
+            self._sessions[id(model)] = ort.InferenceSession(model.SerializeToString(), options,
+                                                             providers=["CPUExecutionProvider"])
+        return self._sessions[id(model)]
+
+    def _run(self, model: Any, X: np.ndarray, names: List[str]) -> List[np.ndarray]:
+        return self._session(model).run(names, {self.input_name: X})
+
+
+class OnnxReferenceEvaluator(_OnnxEvaluator):
+    """onnx.reference.ReferenceEvaluator: ONNX's own Python implementation of each
+    operator (slow: a few hundred rows per second on a tree ensemble)."""
+
+    name = "onnx.reference"
+    transform_implementation = "onnx.reference (numpy)"
+
+    def __init__(self, model: Any, ensemble: Optional[Ensemble] = None):
+        super().__init__(model, ensemble)
+        self._sessions: Dict[int, Any] = {}
+
+    def _run(self, model: Any, X: np.ndarray, names: List[str]) -> List[np.ndarray]:
+        from onnx.reference import ReferenceEvaluator
+
+        if id(model) not in self._sessions:
+            self._sessions[id(model)] = ReferenceEvaluator(model)
+        return self._sessions[id(model)].run(names, {self.input_name: X})
+
+
+def load_for_verify(path: Union[str, Path]) -> Tuple[Ensemble, List[Any]]:
+    """(Ensemble, [evaluators]) for an ONNX file: what the verifier's registry expects."""
+    model = load(path)
+    ensemble = read_onnx(model)
+    return ensemble, [OnnxRuntimeEvaluator(model, ensemble)]

@@ -1,0 +1,491 @@
+"""Write an :class:`~boxwood.ir.Ensemble` as an ONNX graph that computes the source's bits.
+
+The graph (ai.onnx opset 21, ai.onnx.ml opset 5; page docs/onnx.md) is::
+
+    input [N, F]  --(prepare)-->  TreeEnsemble  -->  raw_score [N, K] (float64)
+                                                  \\-> post-transform ops -> prediction
+                                                                        or label + probabilities
+
+Exactness, decision by decision (each one is tested in tests/test_onnx.py against
+scikit-learn, onnxruntime and onnx.reference):
+
+* **Thresholds and leaves are float64** (``nodes_splits`` and ``leaf_weights`` are
+  double tensors) and the tree operator runs on a float64 input, so every comparison
+  is the source's own ``x <= t`` and every leaf is the source's own number.
+* **Inputs compared as float32** (classic GradientBoosting rounds its input to float32
+  before the trees): a float64 graph input goes through ``Cast(to=FLOAT)`` and back
+  ``Cast(to=DOUBLE)``, the same round-to-nearest as numpy's ``astype(float32)``, and the
+  trees then compare it with the unchanged float64 threshold. A float32 graph input
+  (``input_type="float32"``) is widened with ``Cast(to=DOUBLE)``, which is exact.
+* **Summation order.** The tree operator adds leaf values per target in the order of
+  ``tree_roots``, starting from 0.0 (onnxruntime in single-thread mode and
+  onnx.reference both do; see docs/onnx.md). The source computes ``base + leaf_1 +
+  leaf_2 + ...``. Adding the base value afterwards (an ``Add`` node, or opset 3's
+  ``base_values``) computes ``(leaf_1 + leaf_2 + ...) + base`` instead, which differs
+  in the last bits; so the base value of each output is written as a **leading
+  single-leaf tree** for that output, which gives ``0.0 + base + leaf_1 + ...`` -- the
+  source's sum, bit for bit. The metadata says how many leading trees carry base
+  values, so the reader restores them as base values.
+* **Mean of trees** (``combine == "mean"``): the operator sums, then ``Div`` by the
+  number of trees of each output and ``Add`` the base value -- the IR's order.
+* **Categorical splits** are ``BRANCH_MEMBER`` nodes. The graph takes the category
+  *code* (the index into the feature's category list, stated in the metadata). Before
+  the trees, a code that is not one of the known codes (unseen category, negative,
+  fractional) becomes NaN, so it follows the node's missing-value direction as
+  scikit-learn does with unseen categories; and the codes are shifted by +1, because
+  onnx.reference (1.23) reads a set member equal to 0.0 as the end of the set
+  (``while (m := next(it)) and not isnan(m)``). The shift is an ``Add`` of 0.0 on the
+  numeric columns, which changes no value a comparison can see.
+* **Missing values** are NaN; ``nodes_missing_value_tracks_true`` carries each node's
+  direction (the true branch is the IR's left branch).
+
+The legacy float32 variant (ai.onnx.ml opset 3) is in :mod:`boxwood.writers.onnx_legacy`;
+both share the preparation and post-transform parts built here.
+"""
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
+
+import numpy as np
+
+from ..ir import LEAF, Ensemble, ModelError
+
+ONNX_OPSET = 21
+ONNX_ML_OPSET = 5
+INPUT_TYPES = ("float64", "float32")
+# metadata_props keys (values are strings; the JSON ones are documented in docs/onnx.md)
+META_FORMAT = "boxwood.format"
+META_FORMAT_VALUE = "boxwood.onnx-tree-ensemble/1"
+META_VERSION = "boxwood.version"
+META_ESTIMATOR = "boxwood.source_estimator"
+META_FEATURES = "boxwood.feature_names"
+META_CATEGORIES = "boxwood.categories"
+META_SEMANTICS = "boxwood.semantics"
+META_PROVENANCE = "boxwood.provenance"
+META_REFERENCE = "boxwood.reference"
+META_ERROR_BOUND = "boxwood.raw_error_bound"
+# Names of the graph's input and outputs.
+INPUT_NAME = "input"
+RAW_NAME = "raw_score"
+TREE_NODE_NAME = "tree_ensemble"
+# Node modes of ai.onnx.ml TreeEnsemble (opset 5), as uint8 enumeration values.
+MODE_LEQ = 0
+MODE_MEMBER = 6
+# A category code c is written as the set member c + CODE_OFFSET (see module docstring).
+CODE_OFFSET = 1.0
+# The lone member of a categorical split that sends no category left.
+NEVER_MEMBER = -1.0
+TRANSFORMS_SUPPORTED = ("identity", "exp", "logistic", "logistic_double", "softmax")
+
+
+def _onnx():
+    import onnx
+
+    return onnx
+
+
+# ----------------------------------------------------------------------------- graph kit
+class GraphKit:
+    """Collects nodes and constants and hands out unique value names."""
+
+    def __init__(self, float_type: int):
+        self.onnx = _onnx()
+        self.float_type = float_type  # TensorProto.DOUBLE or TensorProto.FLOAT
+        self.np_float = np.float64 if float_type == self.onnx.TensorProto.DOUBLE else np.float32
+        self.nodes: List[Any] = []
+        self.initializers: List[Any] = []
+        self._names: Dict[str, int] = {}
+
+    def name(self, stem: str) -> str:
+        n = self._names.get(stem, 0)
+        self._names[stem] = n + 1
+        return stem if n == 0 else "%s_%d" % (stem, n)
+
+    def const(self, stem: str, values: Any, dtype: Any = None) -> str:
+        array = np.asarray(values, dtype=dtype if dtype is not None else self.np_float)
+        name = self.name(stem)
+        if array.dtype.kind in "OU":
+            tensor = self.onnx.helper.make_tensor(name, self.onnx.TensorProto.STRING, array.shape,
+                                                  [str(v).encode("utf-8") for v in array.ravel()])
+        else:
+            tensor = self.onnx.numpy_helper.from_array(array, name)
+        self.initializers.append(tensor)
+        return name
+
+    def op(self, op_type: str, inputs: Sequence[str], stem: str, output: Optional[str] = None,
+           domain: str = "", **attrs: Any) -> str:
+        out = output or self.name(stem)
+        self.nodes.append(self.onnx.helper.make_node(op_type, list(inputs), [out], name=self.name("n_" + stem),
+                                                     domain=domain, **attrs))
+        return out
+
+
+# ----------------------------------------------------------------------------- preparation
+def prepare_input(kit: GraphKit, ensemble: Ensemble, x: str, input_float_type: int,
+                  round_to_float32: bool) -> str:
+    """The ops between the graph input and the tree operator; returns the tree's input name.
+
+    ``round_to_float32``: a float64 input must be rounded to float32 first (the source
+    compares float32 inputs). ``input_float_type``: the graph input's element type.
+    """
+    T = kit.onnx.TensorProto
+    if input_float_type != kit.float_type:
+        if kit.float_type == T.DOUBLE:
+            x = kit.op("Cast", [x], "input_as_double", to=T.DOUBLE)
+        else:
+            x = kit.op("Cast", [x], "input_as_float", to=T.FLOAT)
+    elif round_to_float32 and kit.float_type == T.DOUBLE:
+        x = kit.op("Cast", [x], "rounded_to_float32", to=T.FLOAT)
+        x = kit.op("Cast", [x], "rounded_as_double", to=T.DOUBLE)
+    if any(f.is_categorical for f in ensemble.features):
+        x = _sanitize_codes(kit, ensemble, x)
+    return x
+
+
+def _sanitize_codes(kit: GraphKit, ensemble: Ensemble, x: str) -> str:
+    """Category codes outside 0..n-1 (or not whole numbers) become NaN; codes shift by +1.
+
+    Numeric columns pass unchanged (lower bound -inf, upper bound +inf, no whole-number
+    test, offset 0.0; NaN stays NaN)."""
+    lo, hi, numeric, offset = [], [], [], []
+    for f in ensemble.features:
+        if f.is_categorical:
+            lo.append(0.0)
+            hi.append(float(len(f.categories) - 1))
+            numeric.append(False)
+            offset.append(CODE_OFFSET)
+        else:
+            lo.append(-math.inf)
+            hi.append(math.inf)
+            numeric.append(True)
+            offset.append(0.0)
+    ge = kit.op("GreaterOrEqual", [x, kit.const("code_low", lo)], "code_not_below")
+    le = kit.op("LessOrEqual", [x, kit.const("code_high", hi)], "code_not_above")
+    whole = kit.op("Equal", [kit.op("Floor", [x], "floor"), x], "code_is_whole")
+    whole = kit.op("Or", [whole, kit.const("numeric_column", numeric, dtype=np.bool_)], "whole_or_numeric")
+    ok = kit.op("And", [kit.op("And", [ge, le], "code_in_range"), whole], "code_known")
+    shifted = kit.op("Add", [x, kit.const("code_offset", offset)], "code_shifted")
+    return kit.op("Where", [ok, shifted, kit.const("missing", np.nan)], "unknown_codes_missing")
+
+
+# ----------------------------------------------------------------------------- tree operator
+def _preorder(tree) -> List[int]:
+    """IR node indices in depth-first order, left branch first (the order written)."""
+    order, stack = [], [0]
+    while stack:
+        node = stack.pop()
+        order.append(node)
+        if tree.feature[node] != LEAF:
+            stack.append(tree.right[node])
+            stack.append(tree.left[node])
+    return order
+
+
+def tree_ensemble_node(kit: GraphKit, ensemble: Ensemble, x: str, output: str) -> int:
+    """Append the ai.onnx.ml TreeEnsemble (opset 5) node; return the number of leading
+    base-value trees written before the ensemble's own trees."""
+    onnx = kit.onnx
+    feat, split, mode, tnode, tleaf, fnode, fleaf, miss = [], [], [], [], [], [], [], []
+    members: List[float] = []
+    weights: List[float] = []
+    targets: List[int] = []
+    roots: List[int] = []
+
+    def leaf(value: float, target: int) -> int:
+        weights.append(float(value))
+        targets.append(target)
+        return len(weights) - 1
+
+    def single_leaf_tree(value: float, target: int) -> None:
+        # "a single nodes_* entry with true and false branches referencing the same leaf"
+        index = leaf(value, target)
+        roots.append(len(feat))
+        feat.append(0)
+        split.append(0.0)
+        mode.append(MODE_LEQ)
+        tnode.append(index)
+        tleaf.append(1)
+        fnode.append(index)
+        fleaf.append(1)
+        miss.append(0)
+
+    leading = 0
+    if ensemble.combine == "sum":
+        for k, base in enumerate(ensemble.base_values):
+            single_leaf_tree(base, k)
+            leading += 1
+    for tree in ensemble.trees:
+        if tree.feature[0] == LEAF:
+            single_leaf_tree(tree.value[0], tree.output)
+            continue
+        order = _preorder(tree)
+        position: Dict[int, Tuple[bool, int]] = {}
+        for node in order:
+            if tree.feature[node] == LEAF:
+                position[node] = (True, leaf(tree.value[node], tree.output))
+            else:
+                position[node] = (False, len(feat))
+                feat.append(tree.feature[node])
+                cats = tree.left_categories[node]
+                if cats is None:
+                    split.append(float(tree.threshold[node]))
+                    mode.append(MODE_LEQ)
+                else:
+                    split.append(0.0)
+                    mode.append(MODE_MEMBER)
+                    # onnxruntime refuses an empty set; NEVER_MEMBER matches no input
+                    # (inputs reach the trees as code + 1 >= 1, or NaN).
+                    members.extend([float(c) + CODE_OFFSET for c in cats] or [NEVER_MEMBER])
+                    members.append(math.nan)
+                miss.append(1 if tree.missing_left[node] else 0)
+                tnode.append(-1)
+                tleaf.append(0)
+                fnode.append(-1)
+                fleaf.append(0)
+        roots.append(position[0][1])
+        for node in order:
+            is_leaf, index = position[node]
+            if is_leaf:
+                continue
+            lk, li = position[tree.left[node]]
+            rk, ri = position[tree.right[node]]
+            tleaf[index], tnode[index] = int(lk), li
+            fleaf[index], fnode[index] = int(rk), ri
+    T = onnx.TensorProto
+    dt = kit.np_float
+    attrs: Dict[str, Any] = dict(
+        aggregate_function=1,  # SUM
+        post_transform=0,  # NONE: the post-transform is done by standard operators
+        n_targets=ensemble.n_outputs,
+        tree_roots=roots,
+        nodes_featureids=feat,
+        nodes_splits=onnx.numpy_helper.from_array(np.asarray(split, dtype=dt), "nodes_splits"),
+        nodes_modes=onnx.numpy_helper.from_array(np.asarray(mode, dtype=np.uint8), "nodes_modes"),
+        nodes_truenodeids=tnode,
+        nodes_trueleafs=tleaf,
+        nodes_falsenodeids=fnode,
+        nodes_falseleafs=fleaf,
+        nodes_missing_value_tracks_true=miss,
+        leaf_targetids=targets,
+        leaf_weights=onnx.numpy_helper.from_array(np.asarray(weights, dtype=dt), "leaf_weights"),
+    )
+    if members:
+        attrs["membership_values"] = onnx.numpy_helper.from_array(np.asarray(members, dtype=dt),
+                                                                  "membership_values")
+    assert kit.float_type == T.DOUBLE
+    kit.nodes.append(onnx.helper.make_node("TreeEnsemble", [x], [output], name=TREE_NODE_NAME,
+                                           domain="ai.onnx.ml", **attrs))
+    return leading
+
+
+def finish_mean(kit: GraphKit, ensemble: Ensemble, summed: str, output: str) -> str:
+    """combine == "mean": raw = base + (sum of the output's trees) / (their count)."""
+    counts = [0] * ensemble.n_outputs
+    for t in ensemble.trees:
+        counts[t.output] += 1
+    mean = kit.op("Div", [summed, kit.const("tree_count", [float(max(c, 1)) for c in counts])], "tree_mean")
+    return kit.op("Add", [mean, kit.const("base_values", ensemble.base_values)], "with_base", output=output)
+
+
+# ----------------------------------------------------------------------------- outputs
+def _label_tensor(classes: List[Any]) -> Tuple[np.ndarray, int]:
+    """Class labels as a constant and its ONNX element type."""
+    T = _onnx().TensorProto
+    if all(isinstance(c, bool) for c in classes):
+        return np.asarray(classes, dtype=np.bool_), T.BOOL
+    if all(isinstance(c, int) and not isinstance(c, bool) for c in classes):
+        return np.asarray(classes, dtype=np.int64), T.INT64
+    if all(isinstance(c, str) for c in classes):
+        return np.asarray(classes, dtype=object), T.STRING
+    if all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in classes):
+        return np.asarray(classes, dtype=np.float64), T.DOUBLE
+    raise ModelError("class labels must be all numbers or all strings to be written to ONNX: %r" % (classes,))
+
+
+def refuse_unsupported(ensemble: Ensemble) -> None:
+    """Raise ModelError for what the ONNX writers cannot state yet."""
+    if getattr(ensemble, "fields", None):
+        raise ModelError("the ONNX writer does not write preprocessing steps (this ensemble comes from a "
+                         "pipeline with raw fields %s); export it as a JSON artefact, or export the final "
+                         "estimator alone" % ", ".join(map(str, ensemble.fields[:5])))
+    if ensemble.post_transform not in TRANSFORMS_SUPPORTED:
+        raise ModelError("the ONNX writer does not support post_transform %r yet; supported: %s"
+                         % (ensemble.post_transform, ", ".join(TRANSFORMS_SUPPORTED)))
+
+
+def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
+    """Post-transform and label ops after the raw scores; returns the graph outputs."""
+    helper, T = kit.onnx.helper, kit.onnx.TensorProto
+    k = ensemble.n_outputs
+    post = ensemble.post_transform
+    if post not in TRANSFORMS_SUPPORTED:
+        raise ModelError("the ONNX writer does not support post_transform %r yet; supported: %s"
+                         % (post, ", ".join(TRANSFORMS_SUPPORTED)))
+    raw_info = helper.make_tensor_value_info(RAW_NAME, kit.float_type, ["N", k])
+    if ensemble.task == "regression":
+        if post == "exp":
+            kit.op("Exp", [raw], "exp", output="prediction")
+        else:
+            kit.op("Identity", [raw], "prediction", output="prediction")
+        return [helper.make_tensor_value_info("prediction", kit.float_type, ["N", k]), raw_info]
+    if ensemble.task != "classification":
+        raise ModelError("the ONNX writer does not support task %r yet" % ensemble.task)
+    classes = list(ensemble.classes)
+    labels, label_type = _label_tensor(classes)
+    label_const = kit.const("class_labels", labels, dtype=labels.dtype)
+    if k == 1:
+        scaled = raw
+        if post == "logistic_double":
+            scaled = kit.op("Mul", [raw, kit.const("two", 2.0)], "raw_times_two")
+        elif post != "logistic":
+            raise ModelError("a binary classifier with one raw output needs a logistic post-transform")
+        # 1 / (1 + exp(-x)): scipy.special.expit's formula, which scikit-learn uses.
+        # (onnxruntime's double Sigmoid kernel is accurate only to about 2**-52 absolute:
+        # it returns 0 below x = -36.7, where the true value is about 1e-16.)
+        denominator = kit.op("Add", [kit.const("one", 1.0), kit.op("Exp", [kit.op("Neg", [scaled], "minus_raw")],
+                                                                    "exp_minus_raw")], "one_plus_exp")
+        p = kit.op("Div", [kit.const("one", 1.0), denominator], "positive_probability")
+        q = kit.op("Sub", [kit.const("one", 1.0), p], "negative_probability")
+        kit.op("Concat", [q, p], "probabilities", output="probabilities", axis=1)
+        cmp = "Greater" if ensemble.binary_rule == "raw_gt_0" else "GreaterOrEqual"
+        positive = kit.op(cmp, [raw, kit.const("zero", 0.0)], "is_positive")
+        index = kit.op("Cast", [positive], "class_index_2d", to=T.INT64)
+        index = kit.op("Reshape", [index, kit.const("flat", [-1], dtype=np.int64)], "class_index")
+    else:
+        if post == "softmax":
+            # onnxruntime's double Softmax is within 3 ulps of scikit-learn's here (the
+            # same as exp(x - max) / sum written out with ReduceMax/Exp/ReduceSum/Div).
+            kit.op("Softmax", [raw], "probabilities", output="probabilities", axis=1)
+        elif post == "identity":
+            kit.op("Identity", [raw], "probabilities", output="probabilities")
+        else:
+            raise ModelError("post_transform %r does not fit a classifier with %d raw outputs" % (post, k))
+        index = kit.op("ArgMax", [raw], "class_index", axis=1, keepdims=0)
+    kit.op("Gather", [label_const, index], "label", output="label", axis=0)
+    return [helper.make_tensor_value_info("label", label_type, ["N"]),
+            helper.make_tensor_value_info("probabilities", kit.float_type, ["N", len(classes)]),
+            raw_info]
+
+
+# ----------------------------------------------------------------------------- metadata
+def _json_number(v: Any) -> Any:
+    if isinstance(v, float) and not math.isfinite(v):
+        return None if math.isnan(v) else ("inf" if v > 0 else "-inf")
+    return v
+
+
+def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, variant: str,
+             extra: Optional[Dict[str, str]] = None) -> Dict[str, str]:
+    """metadata_props: what the graph cannot say itself (names, categories, provenance,
+    the source's reference rows) and a statement of the semantics written."""
+    from .. import __version__
+
+    prov = ensemble.provenance or {}
+    semantics = {
+        "task": ensemble.task,
+        "variant": variant,
+        "input_type": input_type,
+        "compare_precision": ensemble.compare_precision,
+        "missing_values": ensemble.missing_values,
+        "accepts_infinity": ensemble.accepts_infinity,
+        "combine": ensemble.combine,
+        "post_transform": ensemble.post_transform,
+        "classes": ensemble.classes,
+        "binary_rule": ensemble.binary_rule,
+        "output_names": list(ensemble.output_names),
+        "leading_base_trees": leading_base_trees,
+        "category_code_offset": CODE_OFFSET,
+    }
+    meta = {
+        META_FORMAT: META_FORMAT_VALUE,
+        META_VERSION: __version__,
+        META_ESTIMATOR: str(prov.get("estimator", "unknown")),
+        META_FEATURES: json.dumps([f.name for f in ensemble.features]),
+        META_CATEGORIES: json.dumps({f.name: f.categories for f in ensemble.features if f.is_categorical}),
+        META_SEMANTICS: json.dumps(semantics, sort_keys=True),
+        META_PROVENANCE: json.dumps(prov, sort_keys=True, default=str),
+    }
+    ref = ensemble.reference
+    if ref is not None:
+        meta[META_REFERENCE] = json.dumps({
+            "rows": [[_json_number(v) for v in row] for row in ref.rows],
+            "raw": [[_json_number(v) for v in r] for r in ref.raw],
+            "transformed": [[_json_number(v) for v in r] for r in ref.transformed],
+        }, allow_nan=False)
+    meta.update(extra or {})
+    return meta
+
+
+def assemble(kit: GraphKit, ensemble: Ensemble, input_type: int, outputs: List[Any],
+             meta: Dict[str, str], opsets: Dict[str, int], doc: str, ir_version: int = 10) -> Any:
+    """The ModelProto from the collected nodes, checked by onnx.checker."""
+    onnx = kit.onnx
+    helper = onnx.helper
+    x = helper.make_tensor_value_info(INPUT_NAME, input_type, ["N", len(ensemble.features)])
+    graph = helper.make_graph(kit.nodes, "boxwood_tree_ensemble", [x], outputs, kit.initializers)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid(d, v) for d, v in opsets.items()],
+                              producer_name="boxwood", producer_version=meta[META_VERSION], doc_string=doc)
+    model.ir_version = ir_version  # 10 goes with opset 21; older runtimes want 7 (opset 13)
+    for key, value in meta.items():
+        entry = model.metadata_props.add()
+        entry.key, entry.value = key, value
+    onnx.checker.check_model(model, full_check=True)
+    return model
+
+
+def _doc(ensemble: Ensemble) -> str:
+    names = ", ".join(f.name + (" (category code)" if f.is_categorical else "") for f in ensemble.features)
+    return ("Tree ensemble exported by boxwood from %s. Input columns in this order: %s. "
+            "Missing values are NaN; a categorical column takes the index of the category in "
+            "metadata boxwood.categories." % (ensemble.provenance.get("estimator", "a model"), names))
+
+
+# ----------------------------------------------------------------------------- entry points
+def to_model(ensemble: Ensemble, input_type: str = "float64") -> Any:
+    """The ONNX ModelProto (ai.onnx.ml opset 5, float64 trees) for ``ensemble``."""
+    ensemble.check()
+    refuse_unsupported(ensemble)
+    if input_type not in INPUT_TYPES:
+        raise ValueError("input_type is %r; expected one of %s" % (input_type, ", ".join(INPUT_TYPES)))
+    onnx = _onnx()
+    T = onnx.TensorProto
+    kit = GraphKit(T.DOUBLE)
+    graph_input = T.DOUBLE if input_type == "float64" else T.FLOAT
+    x = prepare_input(kit, ensemble, INPUT_NAME, graph_input, ensemble.compare_precision == "float32")
+    if ensemble.combine == "sum":
+        leading = tree_ensemble_node(kit, ensemble, x, RAW_NAME)
+    else:
+        summed = kit.name("tree_sum")
+        leading = tree_ensemble_node(kit, ensemble, x, summed)
+        finish_mean(kit, ensemble, summed, RAW_NAME)
+    outputs = add_outputs(kit, ensemble, RAW_NAME)
+    meta = metadata(ensemble, leading, input_type, "exact")
+    return assemble(kit, ensemble, graph_input, outputs, meta,
+                    {"": ONNX_OPSET, "ai.onnx.ml": ONNX_ML_OPSET}, _doc(ensemble))
+
+
+def to_bytes(ensemble: Ensemble, input_type: Optional[str] = None, legacy: bool = False) -> bytes:
+    """The serialized ONNX model. ``input_type``: "float64" (default) or "float32";
+    ``legacy``: the float32 ai.onnx.ml opset-3 variant (float32 input only)."""
+    if legacy:
+        from .onnx_legacy import to_model as legacy_model
+
+        if input_type not in (None, "float32"):
+            raise ValueError("the legacy (ai.onnx.ml opset 3) graph takes float32 input only, not %r"
+                             % (input_type,))
+        return legacy_model(ensemble).SerializeToString()
+    return to_model(ensemble, input_type or "float64").SerializeToString()
+
+
+def write(ensemble: Ensemble, path: Union[str, Path], input_type: Optional[str] = None,
+          legacy: bool = False) -> int:
+    """Write the ONNX file (atomically: a temporary file, then rename); return its size."""
+    data = to_bytes(ensemble, input_type=input_type, legacy=legacy)
+    path = Path(path)
+    tmp = path.with_name(path.name + ".partial")
+    tmp.write_bytes(data)
+    tmp.replace(path)
+    return len(data)
