@@ -1,0 +1,517 @@
+"""Rows for the empirical check: the user's data, and generated probes.
+
+Every row is a list in feature order: a float for a numeric value, a category value
+(string or number) for a categorical one, None for missing. Each row carries an origin
+(what it probes, where) so that a report can say exactly which input showed a difference.
+
+Generated probes, in priority order, within a row budget (``DEFAULT_PROBE_ROWS``):
+
+1. specials, per feature: NaN (where the model routes missing values), every known
+   category, an unseen category (a string or number the model never saw), the extremes
+   (+-inf where accepted, the largest finite input accepted: +-max float64, or for a
+   model compared in float32 the largest float64 that still rounds to a finite float32,
+   and +-F32_MAX), zeros of both signs and the smallest subnormals;
+2. split probes: for each split of the source and of the artefact, a row built to REACH
+   that node (its ancestors' conditions hold) with the split's feature set to the values
+   on both sides of the boundary at the precision that matters: the threshold t and its
+   float64 neighbours; for float32 comparisons also B (the largest float64 that goes
+   left, :func:`floats.float32_left_boundary`), the float64 after B, the float32 values
+   around t; and NaN where missing values are routed. Distinct boundaries come first,
+   then the remaining nodes, each group in a seeded random order;
+3. random rows, uniform in the observed range of each feature (the data's, widened to the
+   thresholds'), with some missing values where routed.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+from pathlib import Path
+from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
+
+import numpy as np
+
+from ..ir import LEAF, Ensemble, Tree
+from . import floats
+from .floats import Domain, numeric_domain
+
+DEFAULT_PROBE_ROWS = 4000
+UNSEEN_STRING = "\u2205boxwood-unseen-category"
+MAX_CATEGORIES_PER_FEATURE = 64
+
+
+class Rows:
+    """Rows with their origins (``kinds[i]`` is one of ORIGIN_KINDS, ``origins[i]`` says where)."""
+
+    ORIGIN_KINDS = ("data", "special", "split", "random")
+
+    def __init__(self) -> None:
+        self.rows: List[List[Any]] = []
+        self.kinds: List[str] = []
+        self.origins: List[str] = []
+        self._seen: set = set()
+
+    def add(self, row: List[Any], kind: str, origin: str, dedupe: bool = True) -> bool:
+        if dedupe:
+            key = tuple(_key(v) for v in row)
+            if key in self._seen:
+                return False
+            self._seen.add(key)
+        self.rows.append(row)
+        self.kinds.append(kind)
+        self.origins.append(origin)
+        return True
+
+    def __len__(self) -> int:
+        return len(self.rows)
+
+    def counts(self) -> Dict[str, int]:
+        out = {k: 0 for k in self.ORIGIN_KINDS}
+        for k in self.kinds:
+            out[k] += 1
+        return out
+
+
+def _key(v: Any) -> Any:
+    if isinstance(v, float):
+        return ("f", v.hex()) if v == v else ("nan",)
+    return ("o", type(v).__name__, v)
+
+
+# ----------------------------------------------------------------------------- user data
+def read_data(data: Any, source: Ensemble) -> Rows:
+    """The user's rows: a CSV (header row) or JSON Lines file path, a pandas DataFrame, a
+    numpy array, or a list of records (dicts by feature name, or sequences in feature order).
+
+    Files are read as ``boxwood score`` reads them (the device scorer's record parsing:
+    missing-value tokens, numbers, category values; an unseen category is kept and routed
+    as missing). Raises ValueError naming the row and field of the first row the source
+    model cannot score (bad usage: exit code 2)."""
+    from boxwood_runtime import scorer
+
+    from ..writers.json_artefact import to_document
+
+    model = scorer.Model(to_document(source), scorer.DEFAULT_LIMITS, unknown_category="as_missing")
+    out = Rows()
+    if isinstance(data, (str, Path)):
+        records = _file_records(Path(data), model)
+    else:
+        records = _python_records(data, model)
+    names = input_names(model)
+    for n, where, record in records:
+        try:
+            if isinstance(record, dict):
+                row = [record.get(name) for name in names]
+                model.prepare(record, n)
+            else:
+                row = list(record)
+                model.prepare(row, n)
+        except scorer.RecordError as exc:
+            raise ValueError("%s: %s" % (where, exc.reason if exc.field is None else
+                                         "field %r: %s" % (exc.field, exc.reason)))
+        except OverflowError as exc:
+            raise ValueError("%s: a number is out of range: %s" % (where, exc))
+        out.add([_clean(v) for v in row], "data", where, dedupe=False)
+    return out
+
+
+def _clean(v: Any) -> Any:
+    if v is None:
+        return None
+    if isinstance(v, float) and v != v:
+        return None
+    if isinstance(v, (bool, np.bool_)):
+        return v
+    if isinstance(v, (int, np.integer)) and not isinstance(v, bool):
+        return float(v)
+    if isinstance(v, np.floating):
+        v = float(v)
+        return None if v != v else v
+    return v
+
+
+def _file_records(path: Path, model: Any) -> Iterable[Tuple[int, str, Any]]:
+    if not path.is_file():
+        raise FileNotFoundError("data file %r not found" % str(path))
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError as exc:
+        raise ValueError("the data file %r is not UTF-8 text: %s" % (str(path), exc))
+    if text.startswith("\ufeff"):
+        text = text[1:]
+    first = next((line for line in text.splitlines() if line.strip()), "")
+    if first.lstrip().startswith("{"):
+        return list(_jsonl_records(text))
+    return list(_csv_records(text, model))
+
+
+def _jsonl_records(text: str) -> Iterable[Tuple[int, str, Any]]:
+    n = 0
+    for line_no, line in enumerate(text.splitlines(), 1):
+        if not line.strip():
+            continue
+        n += 1
+        where = "data row %d (line %d)" % (n, line_no)
+        try:
+            obj = json.loads(line)
+        except ValueError as exc:
+            raise ValueError("%s: not valid JSON: %s" % (where, exc))
+        if not isinstance(obj, dict):
+            raise ValueError("%s: expected a JSON object" % where)
+        yield n, where, obj
+
+
+def _csv_records(text: str, model: Any) -> Iterable[Tuple[int, str, Any]]:
+    from boxwood_runtime.scorer import RecordError
+
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header = None
+    for cells in reader:
+        if cells:
+            header = [c.strip() for c in cells]
+            break
+    if header is None:
+        return
+    lacking = [f for f in input_names(model) if f not in header]
+    if lacking:
+        raise ValueError("the data file's CSV header lacks the model's column(s) %s; it has: %s"
+                         % (", ".join(repr(c) for c in lacking), ", ".join(header)))
+    index = {name: header.index(name) for name in input_names(model)}
+    n = 0
+    done = reader.line_num
+    for cells in reader:
+        start, done = done + 1, reader.line_num
+        if not cells:
+            continue
+        n += 1
+        where = "data row %d (line %d)" % (n, start)
+        if len(cells) != len(header):
+            raise ValueError("%s: has %d cells, the header has %d" % (where, len(cells), len(header)))
+        try:
+            record = model.record_from_text({name: cells[i] for name, i in index.items()}, n)
+        except RecordError as exc:
+            raise ValueError("%s: field %r: %s" % (where, exc.field, exc.reason))
+        yield n, where, record
+
+
+def input_names(model: Any) -> List[str]:
+    """What a record carries: the features, or a pipeline's raw fields."""
+    return list(getattr(model, "input_names", None) or model.feature_names)
+
+
+def _python_records(data: Any, model: Any) -> Iterable[Tuple[int, str, Any]]:
+    names = input_names(model)
+    if hasattr(data, "columns") and hasattr(data, "itertuples"):  # a pandas DataFrame
+        lacking = [f for f in names if f not in data.columns]
+        if lacking:
+            raise ValueError("the data frame lacks the model's column(s) %s" % ", ".join(map(repr, lacking)))
+        frame = data[names]
+        for n, rec in enumerate(frame.itertuples(index=False), 1):
+            yield n, "data row %d" % n, [_clean(v) for v in rec]
+        return
+    if isinstance(data, np.ndarray):
+        if data.ndim != 2 or data.shape[1] != len(names):
+            raise ValueError("the data array has shape %s; the model takes (n, %d)" % (data.shape, len(names)))
+        data = data.tolist()
+    for n, rec in enumerate(data, 1):
+        if isinstance(rec, dict):
+            yield n, "data row %d" % n, {k: _clean(v) for k, v in rec.items()}
+        else:
+            yield n, "data row %d" % n, [_clean(v) for v in rec]
+
+
+# ----------------------------------------------------------------------------- probes
+class _Plan:
+    """Domains and value ranges for probe generation (what the source accepts)."""
+
+    def __init__(self, source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str]], rows: Sequence[Sequence[Any]]):
+        self.source = source
+        self.features = source.features
+        self.routes = source.missing_values == "route"
+        self.domain: List[Optional[Domain]] = []
+        for f in source.features:
+            self.domain.append(None if f.is_categorical else numeric_domain(
+                "float64", {source.compare_precision}, source.accepts_infinity, self.routes))
+        self.float32 = source.compare_precision == "float32" or any(p == "float32" for _, p in ensembles)
+        # observed ranges: finite data values and thresholds
+        lo = [math.inf] * len(self.features)
+        hi = [-math.inf] * len(self.features)
+        for r in rows:
+            for j, v in enumerate(r):
+                if isinstance(v, float) and math.isfinite(v) and self.domain[j] is not None:
+                    lo[j], hi[j] = min(lo[j], v), max(hi[j], v)
+        for e, _ in ensembles:
+            for t in e.trees:
+                for i in range(t.n_nodes):
+                    j = t.feature[i]
+                    if j >= 0 and t.left_categories[i] is None and math.isfinite(t.threshold[i]) \
+                            and j < len(self.features) and self.domain[j] is not None:
+                        lo[j], hi[j] = min(lo[j], t.threshold[i]), max(hi[j], t.threshold[i])
+        self.lo = [(-1.0 if math.isinf(a) else a) for a in lo]
+        self.hi = [(1.0 if math.isinf(b) else b) for b in hi]
+        for j in range(len(self.features)):
+            if self.lo[j] > self.hi[j]:
+                self.lo[j], self.hi[j] = self.hi[j], self.lo[j]
+            d = self.domain[j]
+            if d is not None:
+                self.lo[j] = max(self.lo[j], d.lo if math.isfinite(d.lo) else -floats.F64_MAX)
+                self.hi[j] = min(self.hi[j], d.hi if math.isfinite(d.hi) else floats.F64_MAX)
+
+    def categories(self, j: int) -> List[Any]:
+        return list(self.features[j].categories)
+
+    def unseen(self, j: int) -> List[Any]:
+        cats = self.categories(j)
+        if any(isinstance(c, str) for c in cats):
+            return [UNSEEN_STRING]
+        nums = [c for c in cats if isinstance(c, (int, float))]
+        out = [float(max(nums) + 1), -1.0, 0.5]
+        if 0.0 in nums:
+            out.append(-0.0)  # equal to the category 0.0: a probe of sign handling, not unseen
+        return out
+
+    def random_row(self, rng: np.random.Generator, missing_rate: float = 0.0) -> List[Any]:
+        row: List[Any] = []
+        for j, f in enumerate(self.features):
+            if self.routes and missing_rate and rng.random() < missing_rate:
+                row.append(None)
+            elif f.is_categorical:
+                row.append(f.categories[int(rng.integers(len(f.categories)))])
+            else:
+                v = float(rng.uniform(self.lo[j], self.hi[j])) if self.hi[j] > self.lo[j] else self.lo[j]
+                if not math.isfinite(v):
+                    v = 0.0
+                if self.source.compare_precision == "float32" and rng.random() < 0.5:
+                    v = floats.round32(v)  # exact float32 values meet float32 thresholds more often
+                row.append(v)
+        return row
+
+
+def _node_constraints(tree: Tree, precision: str, plan: _Plan) -> Dict[int, Tuple[Dict[int, Any], ...]]:
+    """For each node of ``tree``, the conditions on the path from the root:
+    {feature: (lo_excl, hi_incl)} for numeric features, {feature: set of category values}."""
+    out: Dict[int, Any] = {}
+    stack: List[Tuple[int, Dict[int, Any]]] = [(0, {})]
+    while stack:
+        node, cons = stack.pop()
+        out[node] = cons
+        f = tree.feature[node]
+        if f == LEAF or f >= len(plan.features):
+            continue
+        if tree.left_categories[node] is None:
+            b = floats.left_boundary(tree.threshold[node], precision)
+            lo, hi = cons.get(f, (None, math.inf))
+            left = dict(cons)
+            left[f] = (lo, min(hi, b))
+            right = dict(cons)
+            right[f] = (b if lo is None else max(lo, b), hi)
+        else:
+            cats = plan.categories(f)
+            allowed = cons.get(f, set(cats))
+            codes = set(tree.left_categories[node])
+            left = dict(cons)
+            left[f] = {c for i, c in enumerate(cats) if i in codes and c in allowed}
+            right = dict(cons)
+            right[f] = {c for i, c in enumerate(cats) if i not in codes and c in allowed}
+        stack.append((tree.left[node], left))
+        stack.append((tree.right[node], right))
+    return out
+
+
+def _fit_row(base: Sequence[Any], cons: Dict[int, Any], plan: _Plan) -> Optional[List[Any]]:
+    """``base`` changed as little as possible so that every condition in ``cons`` holds."""
+    row = list(base)
+    for f, c in cons.items():
+        if isinstance(c, set):
+            if row[f] not in c:
+                if not c:
+                    return None
+                cats = plan.categories(f)
+                row[f] = min(c, key=cats.index)
+            continue
+        d = plan.domain[f]
+        lo, hi = c
+        above = d.first_above(lo)
+        if above is None or above > hi:
+            return None
+        v = row[f]
+        if not (isinstance(v, float) and v == v):
+            v = plan.lo[f] / 2 + plan.hi[f] / 2
+        v = min(max(v, d.lo), d.hi)
+        if lo is not None and v <= lo:
+            v = above
+        elif v > hi:
+            w = d.last_at_most(hi)
+            v = w if w is not None and (lo is None or w > lo) else above
+        row[f] = v
+    return row
+
+
+def _boundary_values(t: float, precision: str) -> List[Tuple[float, str]]:
+    vals = [(t, "t"), (floats.next_down(t), "t-1ulp"), (floats.next_up(t), "t+1ulp")]
+    if precision == "float32":
+        b = floats.float32_left_boundary(t)
+        f = floats.float32_floor(t)
+        vals += [(b, "B (last float64 going left)"), (floats.next_up(b), "B+1ulp (first going right)"),
+                 (f, "float32 floor of t"), (floats.next32_above(f), "next float32"),
+                 (floats.next32_below(f), "previous float32")]
+    return vals
+
+
+def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], base: Sequence[Sequence[Any]],
+             budget: int = DEFAULT_PROBE_ROWS, seed: int = 0, out: Optional[Rows] = None) -> Rows:
+    """Probe rows for ``source`` and the artefact ensembles ``(ensemble, compare precision, label)``.
+
+    ``base`` are typical rows (the user's data, or none); ``budget`` bounds the number of
+    generated rows (0: none). Deterministic for a given seed.
+    """
+    out = out if out is not None else Rows()
+    if budget <= 0:
+        return out
+    rng = np.random.default_rng(seed)
+    sides = [(source, source.compare_precision, "source")] + [tuple(e) for e in ensembles]
+    plan = _Plan(source, [(e, p) for e, p, _ in sides], base)
+    limit = len(out) + budget
+    bases = [list(r) for r in base[:256]] if base else []
+    if len(base) > 256:
+        bases = [list(base[int(i)]) for i in rng.choice(len(base), 256, replace=False)]
+    while len(bases) < 16:
+        bases.append(plan.random_row(rng))
+    names = [f.name for f in plan.features]
+
+    def base_row(i: int) -> List[Any]:
+        return list(bases[i % len(bases)])
+
+    split_limit = limit - max(budget // 8, 16) if budget > 32 else limit
+    # 1. specials
+    specials: List[Tuple[int, Any, str]] = []
+    for j, f in enumerate(plan.features):
+        if plan.routes:
+            specials.append((j, None, "missing"))
+        if f.is_categorical:
+            for c in plan.categories(j)[:MAX_CATEGORIES_PER_FEATURE]:
+                specials.append((j, c, "category %r" % (c,)))
+            for c in plan.unseen(j):
+                specials.append((j, c, "unseen category %r" % (c,)))
+            continue
+        d = plan.domain[j]
+        values = [d.lo, d.hi, -floats.F64_MAX, floats.F64_MAX, 0.0, -0.0, 5e-324, -5e-324]
+        if plan.float32:
+            values += [floats.F32_MAX, -floats.F32_MAX, floats.float32_input_limit(), -floats.float32_input_limit(),
+                       2.0 ** -149, -2.0 ** -149, 2.0 ** -150, floats.next_up(2.0 ** -150)]
+        seen = set()
+        for v in values:
+            if d.contains(v) and v.hex() not in seen:
+                seen.add(v.hex())
+                specials.append((j, v, "extreme %r" % v))
+    for n, (j, v, what) in enumerate(specials):
+        if len(out) >= limit:
+            return out
+        row = base_row(n)
+        row[j] = v
+        out.add(row, "special", "%s in %r" % (what, names[j]))
+
+    # 2. split probes: distinct boundaries first, then the other nodes
+    first, rest, seen_b = [], [], set()
+    for s, (e, precision, label) in enumerate(sides):
+        for ti, t in enumerate(e.trees):
+            for node in range(t.n_nodes):
+                f = t.feature[node]
+                if f == LEAF or f >= len(plan.features):
+                    continue
+                if t.left_categories[node] is None:
+                    key = (f, floats.left_boundary(t.threshold[node], precision))
+                else:
+                    key = (f, t.left_categories[node], t.missing_left[node])
+                target = (s, ti, node)
+                (rest if key in seen_b else first).append(target)
+                seen_b.add(key)
+    order = [first[i] for i in rng.permutation(len(first))] + [rest[i] for i in rng.permutation(len(rest))]
+    cache: Dict[Tuple[int, int], Any] = {}
+    for n, (s, ti, node) in enumerate(order):
+        if len(out) >= split_limit:
+            break
+        e, precision, label = sides[s]
+        t = e.trees[ti]
+        if (s, ti) not in cache:
+            cache[(s, ti)] = _node_constraints(t, precision, plan)
+        cons = cache[(s, ti)].get(node)
+        if cons is None:
+            continue
+        row = _fit_row(base_row(n), cons, plan)
+        if row is None:
+            continue
+        f = t.feature[node]
+        where = "%s tree %d node %d, %r" % (label, ti, node, names[f])
+        if t.left_categories[node] is None:
+            d = plan.domain[f]
+            lo, hi = cons.get(f, (None, math.inf))
+            for v, what in _boundary_values(t.threshold[node], precision):
+                if d.contains(v) and (lo is None or v > lo) and v <= hi:
+                    r = list(row)
+                    r[f] = v
+                    out.add(r, "split", "%s = %r (%s, t = %r)" % (where, v, what, t.threshold[node]))
+        else:
+            allowed = cons.get(f, set(plan.categories(f)))
+            for c in [c for c in plan.categories(f) if c in allowed][:16] + plan.unseen(f)[:1]:
+                r = list(row)
+                r[f] = c
+                out.add(r, "split", "%s = %r" % (where, c))
+        if plan.routes:
+            r = list(row)
+            r[f] = None
+            out.add(r, "split", "%s = missing" % where)
+
+    # 3. random rows in the observed ranges (an eighth of the budget, or what is left)
+    limit = min(limit, len(out) + max(budget // 8, 16))
+    n = 0
+    while len(out) < limit and n < 4 * budget:
+        out.add(plan.random_row(rng, missing_rate=0.05), "random", "random row %d (seed %d)" % (n, seed))
+        n += 1
+    return out
+
+
+def round_rows_float32(rows: Sequence[Sequence[Any]], source: Ensemble) -> Tuple[List[List[Any]], List[int]]:
+    """Rows with numeric values rounded to float32 (for evaluators that take float32 input);
+    returns (rows, indices kept): rows with a value beyond the float32 range are dropped."""
+    out, kept = [], []
+    numeric = [not f.is_categorical for f in source.features]
+    for i, r in enumerate(rows):
+        new = []
+        for j, v in enumerate(r):
+            if numeric[j] and isinstance(v, float):
+                w = floats.round32(v)
+                if math.isinf(w) and not math.isinf(v):
+                    break
+                new.append(w)
+            else:
+                new.append(v)
+        else:
+            out.append(new)
+            kept.append(i)
+    return out, kept
+
+
+def to_field_rows(rows: Sequence[Sequence[Any]], source: Ensemble) -> List[List[Any]]:
+    """Feature-space rows as raw-field rows, for an ensemble with preprocessing (a
+    pipeline): an encoded feature's code becomes its category (the nearest code, clamped);
+    other values pass through; a field no feature reads is None."""
+    fields = source.fields
+    out = []
+    for r in rows:
+        new: List[Any] = [None] * len(fields)
+        done = [False] * len(fields)
+        for j, f in enumerate(source.features):
+            fi = fields.index(f.source["field"])
+            if done[fi]:
+                continue
+            done[fi] = True
+            v = r[j]
+            enc = next((st for st in f.source["steps"] if st.get("op") == "encode"), None)
+            if enc is not None and isinstance(v, float) and math.isfinite(v):
+                cats = enc["categories"]
+                v = cats[int(min(max(round(v), 0), len(cats) - 1))]
+            new[fi] = v
+        out.append(new)
+    return out
