@@ -1,8 +1,12 @@
 """The ``boxwood`` command line.
 
     boxwood export MODEL.joblib -o model.json     # fitted scikit-learn model -> artefact
+    boxwood export MODEL.joblib -o model.onnx     # ... -> exact ONNX graph (docs/onnx.md)
+    boxwood export model.onnx -o model.json       # ONNX tree-ensemble file -> artefact
     boxwood score model.json readings.csv -o scored.csv
-    boxwood inspect model.json [--json]
+    boxwood inspect model.json [--json] [--micropython]
+    boxwood bundle MODEL.joblib|model.json -o DIR [--zip]   # one folder to copy onto a box
+    boxwood verify MODEL.joblib model.json [--data FILE] [--report-json F] [--junit F]
     boxwood demo [--out DIR] [--rows N]
 
 ``export`` loads a joblib or pickle file. Loading a pickle runs code stored in it:
@@ -138,12 +142,23 @@ def _add_export(commands):
                     "scores on the embedded reference rows. WARNING: " + PICKLE_WARNING)
     p.add_argument("model", metavar="MODEL",
                    help="joblib or pickle file of a fitted estimator (trusted files only: "
-                        "loading it runs code)")
-    p.add_argument("-o", "--output", required=True, metavar="OUT.json", help="artefact file to write")
+                        "loading it runs code), or an ONNX tree-ensemble file (.onnx: read as data, "
+                        "never executed)")
+    p.add_argument("-o", "--output", required=True, metavar="OUT.json|OUT.onnx", help="artefact file to write")
     p.add_argument("--reference-rows", type=_positive_int, default=6, metavar="N",
                    help="number of self-check rows scored by the source model and stored in the "
                         "artefact (default: %(default)s; one all-missing row is added when the "
                         "model routes missing values)")
+    p.add_argument("--format", choices=("json", "onnx"), dest="artefact_format",
+                   help="artefact format (default: from the extension of --output)")
+    p.add_argument("--input-type", choices=("float64", "float32"), default=None,
+                   help="ONNX only: element type of the graph input (default: float64; float32 "
+                        "with --legacy-float32). Decisions match the source exactly either way "
+                        "(docs/onnx.md)")
+    p.add_argument("--legacy-float32", action="store_true",
+                   help="ONNX only: write the float32 graph for older runtimes (ai.onnx.ml opset 3 "
+                        "TreeEnsembleRegressor, float32 input): decisions unchanged, raw scores within "
+                        "a stated bound instead of bit-identical")
     p.set_defaults(func=_run_export)
 
 
@@ -152,12 +167,20 @@ def _run_export(args):
     from .readers import SUPPORTED, UnsupportedModel
     from .writers import WRITERS
 
-    ext = Path(args.output).suffix.lower()
+    from .readers.onnx_reader import looks_like_onnx
+
+    ext = "." + args.artefact_format if args.artefact_format else Path(args.output).suffix.lower()
     if ext not in WRITERS:
-        raise UsageError("cannot tell the artefact format from %r; use one of the extensions %s"
-                         % (args.output, ", ".join(sorted(WRITERS))))
+        raise UsageError("cannot tell the artefact format from %r; use one of the extensions %s "
+                         "or --format" % (args.output, ", ".join(sorted(WRITERS))))
+    if ext != ".onnx" and (args.input_type or args.legacy_float32):
+        raise UsageError("--input-type and --legacy-float32 apply to ONNX output only")
+    if args.legacy_float32 and args.input_type == "float64":
+        raise UsageError("--legacy-float32 graphs take float32 input; drop --input-type float64")
     if not os.path.isfile(args.model):
         raise UsageError("model file %r not found" % args.model)
+    if looks_like_onnx(args.model):
+        return _export_from_onnx(args, ext)
     try:
         model = load_model_file(args.model)
     except (OSError, MemoryError):
@@ -172,6 +195,8 @@ def _run_export(args):
         if "supported models" not in message:
             message += "\nsupported models:\n  - " + "\n  - ".join(SUPPORTED)
         raise UsageError(message)
+    if ext == ".onnx":
+        return _write_onnx(args, ensemble, ensemble.provenance.get("estimator", type(model).__name__))
     size = WRITERS[ext](ensemble, args.output)
     device = _load_artefact(args.output)  # digest and self-check, as a box would
     ok, check = device.self_check()
@@ -188,6 +213,51 @@ def _run_export(args):
             ("digest", device.doc.get("boxwood_digest")),
             ("self-check", check)):
         print("  %-11s %s" % (key, value))
+    return 0
+
+
+def _export_from_onnx(args, ext):
+    """``boxwood export model.onnx -o out.json|out.onnx``: the ONNX file is read as data."""
+    from .readers.onnx_reader import read_file
+
+    ensemble = read_file(args.model, reference_rows=args.reference_rows)
+    if ext == ".onnx":
+        return _write_onnx(args, ensemble, "ONNX file %s" % args.model)
+    from .writers import WRITERS
+
+    size = WRITERS[ext](ensemble, args.output)
+    device = _load_artefact(args.output)
+    print("exported ONNX file %s (%s) to %s" % (args.model, ensemble.provenance.get("estimator"), args.output))
+    for key, value in (("task", device.task), ("trees", device.n_trees), ("nodes", device.n_nodes),
+                       ("bytes", size), ("digest", device.doc.get("boxwood_digest")),
+                       ("self-check", device.self_check()[1]),
+                       ("reference", ensemble.provenance.get("reference_rows", "the source model's, from the "
+                                                                                "ONNX metadata"))):
+        print("  %-11s %s" % (key, value))
+    return 0
+
+
+def _write_onnx(args, ensemble, what):
+    """Write an ONNX graph, run it with onnxruntime on the reference rows, print a summary."""
+    from .onnx_check import check_onnx
+    from .writers.onnx_writer import write
+
+    size = write(ensemble, args.output, input_type=args.input_type, legacy=args.legacy_float32)
+    ok, check = check_onnx(args.output, expected=ensemble)
+    print("exported %s to %s" % (what, args.output))
+    for key, value in (
+            ("graph", "ai.onnx.ml opset %s, %s input" % ((3, "float32") if args.legacy_float32 else
+                                                         (5, args.input_type or "float64"))),
+            ("task", ensemble.task),
+            ("features", "%d (%d categorical; categorical columns take category codes)"
+             % (len(ensemble.features), sum(f.is_categorical for f in ensemble.features))),
+            ("trees", len(ensemble.trees)),
+            ("nodes", ensemble.n_nodes),
+            ("bytes", size),
+            ("check", check)):
+        print("  %-11s %s" % (key, value))
+    if not ok:
+        raise CheckFailed("%s: onnxruntime does not reproduce the model: %s" % (args.output, check))
     return 0
 
 
@@ -242,10 +312,52 @@ def _add_inspect(commands):
         "inspect", help="describe an artefact and run its self-check",
         description="Describe an artefact (task, features, outputs, size of the ensemble, digest, "
                     "provenance) and run its self-check. Exit 1 if the self-check fails, 2 if the "
-                    "file cannot be read as an artefact.")
+                    "file cannot be read as an artefact. An ONNX file (.onnx) is read with boxwood's "
+                    "ONNX reader and run with onnxruntime on reference rows.")
     p.add_argument("artefact", metavar="ARTEFACT", help="boxwood artefact (.json)")
     p.add_argument("--json", action="store_true", help="print the description as JSON")
+    p.add_argument("--micropython", action="store_true",
+                   help="measure the scorer's heap for one record under MicroPython (needs node and the "
+                        "MicroPython WebAssembly port, see docs/device.md); without it, the numbers of a "
+                        "bundle's manifest.json beside the artefact are shown when there is one")
+    p.add_argument("--micropython-port", metavar="DIR", help="folder of the port's micropython.mjs")
     p.set_defaults(func=_run_inspect)
+
+
+def _inspect_footprint(args, model):
+    """Footprint for ``inspect``: measured (--micropython), else from a bundle manifest
+    beside the artefact that names the same digest, else marked not measured."""
+    from .bundle import MANIFEST, footprint
+
+    if args.micropython:
+        return footprint(_read_bytes(args.artefact), measure="require", port=args.micropython_port)
+    foot = {"artefact_bytes": os.path.getsize(args.artefact), "trees": model.n_trees, "nodes": model.n_nodes,
+            "max_depth": model.max_depth,
+            "micropython": {"measured": False, "why": "not measured (use --micropython)"}}
+    manifest = Path(args.artefact).resolve().parent / MANIFEST
+    try:
+        doc = json.loads(manifest.read_bytes())
+        if doc["artefact"]["digest"] == model.doc.get("boxwood_digest") and doc["footprint"]["micropython"]:
+            foot["micropython"] = dict(doc["footprint"]["micropython"], source=str(manifest))
+    except (OSError, ValueError, KeyError, TypeError):
+        pass
+    return foot
+
+
+def _read_bytes(path):
+    with open(path, "rb") as fh:
+        return fh.read()
+
+
+def _footprint_text(foot):
+    mpy = foot.get("micropython") or {}
+    if not mpy.get("measured"):
+        return "MicroPython heap %s" % mpy.get("why", "not measured")
+    return ("MicroPython heap for one record %d bytes (model %d, scorer module %d, record %d); loading "
+            "%d to %d; MicroPython %s%s" % (mpy["peak_bytes"], mpy["model_bytes"], mpy["module_bytes"],
+                                            mpy["record_bytes"], mpy.get("load_live_bytes", 0),
+                                            mpy["load_peak_bytes"], mpy.get("micropython"),
+                                            ", from " + mpy["source"] if mpy.get("source") else ""))
 
 
 def describe(model, path):
@@ -284,8 +396,16 @@ def describe(model, path):
 def _run_inspect(args):
     if not os.path.isfile(args.artefact):
         raise UsageError("artefact file %r not found" % args.artefact)
-    model = _load_artefact(args.artefact, self_check=False)
-    info = describe(model, args.artefact)
+    from .readers.onnx_reader import looks_like_onnx
+
+    if looks_like_onnx(args.artefact):
+        from .onnx_check import describe_onnx
+
+        info = describe_onnx(args.artefact)
+    else:
+        model = _load_artefact(args.artefact, self_check=False)
+        info = describe(model, args.artefact)
+        info["footprint"] = _inspect_footprint(args, model)
     if args.json:
         print(json.dumps(info, indent=2))
     else:
@@ -317,6 +437,8 @@ def _print_table(info, shown=40):
         ("versions", ", ".join("%s %s" % kv for kv in sorted(versions.items()))),
         ("self-check", ("ok: " if info["self_check"]["ok"] else "FAILED: ") + info["self_check"]["message"]),
     ]
+    if info.get("footprint"):
+        rows.append(("footprint", _footprint_text(info["footprint"])))
     for key, value in rows:
         print("%-11s %s" % (key, value))
     print("features:")
@@ -325,6 +447,45 @@ def _print_table(info, shown=40):
         print("  %-30s %s" % (f["name"], kind))
     if len(info["features"]) > shown:
         print("  ... and %d more (see --json)" % (len(info["features"]) - shown))
+
+
+# ----------------------------------------------------------------------------- bundle
+def _add_bundle(commands):
+    p = commands.add_parser(
+        "bundle", help="make one folder to copy onto a box: artefact, scorer, entry script, manifest, README",
+        description="Make a folder holding the artefact, the standard-library scorer (scorer.py, "
+                    "stream.py), the entry script box.py (check / score / info on the box, CPython 3.8+ "
+                    "or MicroPython), a device README and manifest.json (sha256 and size of every file, "
+                    "versions, footprint). SOURCE is a boxwood artefact (.json) or a fitted model saved "
+                    "with joblib or pickle, exported on the way. WARNING: " + PICKLE_WARNING)
+    p.add_argument("source", metavar="SOURCE",
+                   help="boxwood artefact (.json), or a joblib/pickle model file (trusted files only: "
+                        "loading it runs code)")
+    p.add_argument("-o", "--output", required=True, metavar="DIR", help="bundle folder to create (new or empty)")
+    p.add_argument("--zip", action="store_true", help="also write DIR.zip (same bytes for the same bundle)")
+    p.add_argument("--micropython-footprint", choices=("auto", "require", "skip"), default="auto",
+                   help="measure the scorer's heap under MicroPython for the manifest: auto = when node and "
+                        "the MicroPython WebAssembly port are found (default), require = fail if not, skip")
+    p.add_argument("--micropython-port", metavar="DIR", help="folder of the port's micropython.mjs")
+    p.add_argument("--reference-rows", type=_positive_int, default=6, metavar="N",
+                   help="self-check rows when SOURCE is a model file (default: %(default)s)")
+    p.set_defaults(func=_run_bundle)
+
+
+def _run_bundle(args):
+    from .bundle import make_bundle
+
+    manifest = make_bundle(args.source, args.output, zip_file=args.zip, measure=args.micropython_footprint,
+                           port=args.micropython_port, reference_rows=args.reference_rows)
+    foot = manifest["footprint"]
+    print("bundled %s into %s%s" % (args.source, args.output, " (and %s.zip)" % args.output if args.zip else ""))
+    for name, entry in sorted(manifest["files"].items()):
+        print("  %-12s %8d bytes  sha256 %s" % (name, entry["bytes"], entry["sha256"]))
+    print("  %-12s %s trees, %s nodes, deepest path %s splits" % ("model", foot["trees"], foot["nodes"],
+                                                                   foot["max_depth"]))
+    print("  %-12s %s" % ("footprint", _footprint_text(foot)))
+    print("on the box:  python3 box.py check   (or: micropython box.py check)")
+    return 0
 
 
 # ----------------------------------------------------------------------------- demo
@@ -354,8 +515,76 @@ def _run_demo(args):
     return run(args.out, args.rows)
 
 
+# ----------------------------------------------------------------------------- verify
+def _tolerance(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError("expected a number, got %r" % text)
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError("must be a finite number >= 0, got %r" % text)
+    return value
+
+
+def _add_verify(commands):
+    from .verify.probes import DEFAULT_PROBE_ROWS
+
+    p = commands.add_parser(
+        "verify", help="prove that artefacts compute what the source model computes (CI-ready reports; "
+                       "loading a pickle runs code: trusted files only)",
+        description="Compare the fitted source model with each ARTEFACT: an exact structural proof over "
+                    "every input (tree by tree, node by node, with a certified bound on the difference of "
+                    "raw scores and outputs) and an empirical check on the --data rows and generated "
+                    "probes (split thresholds and their neighbouring floats, NaN, unseen categories, "
+                    "extremes, random rows), for every evaluator of the artefact. Exit 0 when every check "
+                    "passes, 1 when one fails, 2 on bad usage or input. WARNING: " + PICKLE_WARNING)
+    p.add_argument("model", metavar="MODEL",
+                   help="joblib or pickle file of the fitted source model (trusted files only: loading it "
+                        "runs code)")
+    p.add_argument("artefacts", metavar="ARTEFACT", nargs="+", help="artefact file(s) to verify (.json)")
+    p.add_argument("--data", metavar="FILE",
+                   help="rows to compare on besides the generated probes: CSV with a header row or JSON "
+                        "Lines, read as 'boxwood score' reads them")
+    p.add_argument("--abs-tol", type=_tolerance, metavar="A",
+                   help="absolute tolerance for every output kind (default: per kind, 0 for raw scores)")
+    p.add_argument("--rel-tol", type=_tolerance, metavar="R",
+                   help="relative tolerance for every output kind (default: per kind, 0 for raw scores, "
+                        "a few ulps for probabilities and exp outputs); a difference passes when "
+                        "|a - s| <= max(A, R |s|)")
+    p.add_argument("--report-json", metavar="F", help="write the JSON report (schemas/verify-report.schema.json)")
+    p.add_argument("--junit", metavar="F", help="write JUnit XML (one test case per check and evaluator)")
+    p.add_argument("--probes", type=int, default=DEFAULT_PROBE_ROWS, metavar="N",
+                   help="most generated probe rows, 0 for none (default: %(default)s)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the random rows (default: 0)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar; print only the verdict line")
+    p.set_defaults(func=_run_verify)
+
+
+def _run_verify(args):
+    from .verify import verify
+
+    if not os.path.isfile(args.model):
+        raise UsageError("model file %r not found" % args.model)
+    for path in args.artefacts:
+        if not os.path.isfile(path):
+            raise UsageError("artefact file %r not found" % path)
+    if args.data is not None and not os.path.isfile(args.data):
+        raise UsageError("data file %r not found" % args.data)
+    if args.probes < 0:
+        raise UsageError("--probes must be 0 or more, got %d" % args.probes)
+    result = verify(args.model, args.artefacts, data=args.data, abs_tol=args.abs_tol, rel_tol=args.rel_tol,
+                    probes=args.probes, seed=args.seed, progress=False if args.quiet else None)
+    if args.report_json:
+        result.write_json(args.report_json)
+    if args.junit:
+        result.write_junit(args.junit)
+    text = result.summary()
+    print(text.splitlines()[0] if args.quiet else text)
+    return 0 if result.passed else 1
+
+
 # ----------------------------------------------------------------------------- main
-COMMANDS = (_add_export, _add_score, _add_inspect, _add_demo)
+COMMANDS = (_add_export, _add_score, _add_inspect, _add_bundle, _add_verify, _add_demo)
 
 
 def build_parser():
