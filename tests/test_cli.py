@@ -333,3 +333,23 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
         assert main(["inspect", str(out / name)]) == 0
     scored = parse_csv((out / "sample_scored_defrost_needed_hgb.csv").read_text())
     assert len(scored) == 6 and scored[-1]["error"].startswith("row 6 (line 7), field 'room_type'")
+
+
+def test_demo_with_every_model_kind(tmp_path, capsys):
+    """--models all adds a forest, a tree, an isolation forest, AdaBoost and a pipeline;
+    each is compared with scikit-learn bit for bit and labels agree."""
+    out = tmp_path / "demo-all"
+    assert main(["demo", "--rows", "300", "--models", "all", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert text.count("(bit-identical: yes)") == 8 and "NO" not in text
+    for name in ("next_hour_temp_forest", "defrost_needed_tree", "unusual_reading_isolation",
+                 "defrost_needed_adaboost", "defrost_needed_pipeline"):
+        assert (out / (name + ".json")).is_file()
+    # the pipeline's encoder maps the unknown room type to its unknown_value: no error row
+    scored = parse_csv((out / "sample_scored_defrost_needed_pipeline.csv").read_text())
+    assert len(scored) == 6 and all(r["error"] == "" for r in scored)
+
+
+def test_demo_rejects_unknown_model_kind(capsys):
+    assert main(["demo", "--rows", "300", "--models", "forest,cactus"]) == 2
+    assert "cactus" in capsys.readouterr().err

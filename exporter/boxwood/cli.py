@@ -499,6 +499,11 @@ def _add_demo(commands):
     p.add_argument("--out", metavar="DIR", help="directory for the files (default: a new temporary directory)")
     p.add_argument("--rows", type=_demo_rows, default=4000, metavar="N",
                    help="number of generated rows, at least 100 (default: %(default)s)")
+    from .demo import DEFAULT_MODELS, MODEL_KINDS
+
+    p.add_argument("--models", default=",".join(DEFAULT_MODELS), metavar="KINDS",
+                   help="comma-separated model kinds to train, or 'all' (default: %(default)s): "
+                        + "; ".join("%s: %s" % kv for kv in MODEL_KINDS.items()))
     p.set_defaults(func=_run_demo)
 
 
@@ -512,7 +517,7 @@ def _demo_rows(text):
 def _run_demo(args):
     from .demo import run
 
-    return run(args.out, args.rows)
+    return run(args.out, args.rows, models=[m.strip() for m in args.models.split(",") if m.strip()])
 
 
 # ----------------------------------------------------------------------------- verify

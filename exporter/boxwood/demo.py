@@ -15,6 +15,17 @@ from pathlib import Path
 
 DEFAULT_ROWS = 4000
 SAMPLE_ROWS = 6
+# Model kinds the demo can train (``run(models=...)``, ``boxwood demo --models``).
+# "boosting" is the default trio: histogram regressor and classifier, classic regressor.
+MODEL_KINDS = {
+    "boosting": "histogram boosting (regressor, classifier) and a classic float32 regressor",
+    "forest": "a random forest for next-hour temperature (NaN routed by the trees)",
+    "tree": "one decision tree for defrost-needed, small enough to read",
+    "isolation": "an isolation forest that flags unusual sensor readings on the box",
+    "adaboost": "AdaBoost (SAMME) over shallow trees for defrost-needed",
+    "pipeline": "a Pipeline that imputes and encodes raw readings (room_type as text) before boosting",
+}
+DEFAULT_MODELS = ("boosting",)
 
 
 class DemoError(ValueError):
@@ -42,27 +53,20 @@ def _same_bits(a, b):
     return struct.pack("<d", a) == struct.pack("<d", b)
 
 
-def run(out_dir=None, rows=DEFAULT_ROWS, echo=print):
+def run(out_dir=None, rows=DEFAULT_ROWS, echo=print, models=DEFAULT_MODELS):
     """Run the demo, writing files to ``out_dir`` (default: a new temporary directory).
 
     Returns 0 when every device raw score equals scikit-learn's bit for bit (and the
     classifier's labels agree and its probabilities are within the scorer's stated
-    bound), else 1.
+    bound), else 1. ``models`` names kinds from MODEL_KINDS ("all" for every one).
     """
+    models = tuple(MODEL_KINDS) if "all" in models else tuple(models)
+    unknown = [m for m in models if m not in MODEL_KINDS]
+    if unknown:
+        raise DemoError("unknown demo model kind(s) %s; choose from %s, or all"
+                        % (", ".join(unknown), ", ".join(MODEL_KINDS)))
     gen = samples_generator()
     import pandas as pd
-    from sklearn.ensemble import (
-        GradientBoostingRegressor,
-        HistGradientBoostingClassifier,
-        HistGradientBoostingRegressor,
-    )
-
-    import boxwood_runtime
-    from boxwood_runtime.scorer import SELF_CHECK_ULPS, ulp_distance
-    from boxwood_runtime.stream import score_stream
-
-    from .export import build
-    from .writers import json_artefact
 
     out = Path(out_dir) if out_dir else Path(tempfile.mkdtemp(prefix="boxwood-demo-"))
     out.mkdir(parents=True, exist_ok=True)
@@ -87,6 +91,23 @@ def run(out_dir=None, rows=DEFAULT_ROWS, echo=print):
     y_defrost = frame[gen.TARGET_CLASSIFICATION].to_numpy()
 
     # -- training -----------------------------------------------------------------
+    jobs = []
+    complete = ~frame[gen.FEATURES].isna().any(axis=1).to_numpy()
+    coded_names = ["room_type_code"] + gen.FEATURES[1:]
+    coded = pd.DataFrame(gen.numeric_matrix(frame), columns=coded_names)  # NaN kept
+    if "boosting" in models:
+        jobs += _train_boosting(gen, step, echo, X, coded, complete, y_temp, y_defrost, rows)
+    jobs += _train_others(gen, step, echo, models, frame, coded, complete, y_temp, y_defrost)
+    return _export_compare_stream(gen, step, echo, out, frame, jobs)
+
+
+def _train_boosting(gen, step, echo, X, coded, complete, y_temp, y_defrost, rows):
+    from sklearn.ensemble import (
+        GradientBoostingRegressor,
+        HistGradientBoostingClassifier,
+        HistGradientBoostingRegressor,
+    )
+
     step("Train HistGradientBoostingRegressor for %s (room_type as a native categorical "
          "with string categories; NaN routed by the trees)" % gen.TARGET_REGRESSION)
     hgbr = HistGradientBoostingRegressor(max_iter=100, categorical_features="from_dtype",
@@ -100,26 +121,86 @@ def run(out_dir=None, rows=DEFAULT_ROWS, echo=print):
 
     step("Train a classic GradientBoostingRegressor for %s on numerically coded data "
          "(the float32 comparison path)" % gen.TARGET_REGRESSION)
-    complete = ~frame[gen.FEATURES].isna().any(axis=1).to_numpy()
-    coded_names = ["room_type_code"] + gen.FEATURES[1:]
-    Xc = pd.DataFrame(gen.numeric_matrix(frame)[complete], columns=coded_names)
+    Xc = coded[complete].reset_index(drop=True)
     gbr = GradientBoostingRegressor(n_estimators=100, max_depth=3, random_state=0).fit(Xc, y_temp[complete])
     echo("   room_type coded %s; trained and compared on the %d of %d rows with no missing "
          "reading (impute-free rows only: boxwood's classic-tree export refuses missing values, "
          "and the demo does not impute)" % (
              ", ".join("%s=%d" % (r, i) for i, r in enumerate(gen.ROOM_TYPES)), len(Xc), rows))
 
-    # -- export -------------------------------------------------------------------
-    jobs = [
+    return [
         ("next_hour_temp_hgb", hgbr, X, "regression"),
         ("defrost_needed_hgb", hgbc, X, "classification"),
         ("next_hour_temp_gb_float32", gbr, Xc, "regression"),
     ]
+
+
+def _train_others(gen, step, echo, models, frame, coded, complete, y_temp, y_defrost):
+    """Train the non-default kinds the user asked for; return their export jobs."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import (
+        AdaBoostClassifier,
+        GradientBoostingClassifier,
+        IsolationForest,
+        RandomForestRegressor,
+    )
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import OrdinalEncoder
+    from sklearn.tree import DecisionTreeClassifier
+
+    jobs = []
+    if "forest" in models:
+        step("Train a RandomForestRegressor for %s on coded data with NaN (missing readings routed "
+             "by the trees)" % gen.TARGET_REGRESSION)
+        forest = RandomForestRegressor(n_estimators=40, max_depth=8, random_state=0, n_jobs=None)
+        jobs.append(("next_hour_temp_forest", forest.fit(coded, y_temp), coded, "regression"))
+    if "tree" in models:
+        step("Train one DecisionTreeClassifier (depth 4) for %s" % gen.TARGET_CLASSIFICATION)
+        tree = DecisionTreeClassifier(max_depth=4, random_state=0).fit(coded, y_defrost)
+        jobs.append(("defrost_needed_tree", tree, coded, "classification"))
+    if "isolation" in models:
+        step("Train an IsolationForest on the readings (flags unusual readings: -1 outlier, 1 inlier)")
+        iso = IsolationForest(n_estimators=100, random_state=0).fit(coded)
+        flagged = int((iso.predict(coded) == -1).sum())
+        echo("   %d of %d readings flagged as unusual" % (flagged, len(coded)))
+        jobs.append(("unusual_reading_isolation", iso, coded, "outlier_detection"))
+    if "adaboost" in models:
+        Xc = coded[complete].reset_index(drop=True)
+        step("Train AdaBoostClassifier (SAMME, trees of depth 2) for %s on the %d complete rows"
+             % (gen.TARGET_CLASSIFICATION, len(Xc)))
+        ada = AdaBoostClassifier(DecisionTreeClassifier(max_depth=2), n_estimators=50, random_state=0)
+        jobs.append(("defrost_needed_adaboost", ada.fit(Xc, y_defrost[complete]), Xc, "classification"))
+    if "pipeline" in models:
+        raw = frame[gen.FEATURES].copy()  # room_type stays text; NaN for missing readings
+        numeric = gen.FEATURES[1:]
+        step("Train a Pipeline for %s: room_type ordinal-encoded from text (unknown rooms -> -1), "
+             "missing readings imputed by the median, then classic boosting" % gen.TARGET_CLASSIFICATION)
+        pre = ColumnTransformer([
+            ("room", OrdinalEncoder(handle_unknown="use_encoded_value", unknown_value=-1), ["room_type"]),
+            ("readings", SimpleImputer(strategy="median"), numeric),
+        ])
+        pipe = make_pipeline(pre, GradientBoostingClassifier(n_estimators=60, max_depth=3, random_state=0))
+        jobs.append(("defrost_needed_pipeline", pipe.fit(raw, y_defrost), raw, "classification"))
+    return jobs
+
+
+def _export_compare_stream(gen, step, echo, out, frame, jobs):
+    import boxwood_runtime
+    from boxwood_runtime.scorer import SELF_CHECK_ULPS, ulp_distance
+    from boxwood_runtime.stream import score_stream
+
+    from .export import build
+    from .source import SourceModel
+    from .writers import json_artefact
+
+    # -- export -------------------------------------------------------------------
     step("Export each model to a boxwood artefact")
     paths = {}
+    ensembles = {}
     for name, model, _, _ in jobs:
         path = out / (name + ".json")
-        ensemble = build(model)
+        ensemble = ensembles[name] = build(model)
         size = json_artefact.write(ensemble, path)
         paths[name] = path
         echo("   %-28s %d trees, %d nodes, %d bytes -> %s" % (
@@ -138,27 +219,34 @@ def run(out_dir=None, rows=DEFAULT_ROWS, echo=print):
     all_ok = True
     for name, model, data, task in jobs:
         device = devices[name]
-        # scikit-learn's own numbers on the user's own frame: predict for the
-        # identity-link regressors, decision_function for the classifier.
-        theirs = model.decision_function(data) if task == "classification" else model.predict(data)
         records = data.to_dict("records")  # NaN stays NaN: the scorer reads it as missing
-        mine = [device.decision_function(r) for r in records]
+        rows = [[None if (isinstance(v, float) and v != v) else v for v in (r[n] for n in device.input_names)]
+                for r in records]
+        # scikit-learn's own numbers on the same rows (decision_function, predict, the
+        # forest's averaged output or the isolation forest's summed path lengths)
+        theirs = SourceModel(model, ensembles[name]).raw(rows).ravel().tolist()
+        raws = [device.raw_scores(device.prepare(r)) for r in rows]
+        mine = [v for raw in raws for v in device.exact_values(raw)]
         worst = 0.0
-        identical = True
-        for a, b in zip(mine, theirs.tolist()):
+        identical = len(mine) == len(theirs)
+        for a, b in zip(mine, theirs):
             worst = max(worst, abs(a - b))
             identical = identical and _same_bits(a, b)
         all_ok = all_ok and identical
         echo("   %-28s max |difference| = %r over %d rows (bit-identical: %s)"
              % (name, worst, len(records), "yes" if identical else "NO"))
-        if task == "classification":
+        if task in ("classification", "outlier_detection"):
             labels = model.predict(data).tolist()
+            agree = sum(1 for raw, want in zip(raws, labels) if device.predict_from_raw(raw) == want)
+            all_ok = all_ok and agree == len(labels)
+            if task == "outlier_detection":
+                echo("   %-28s labels agree on %d of %d rows" % ("", agree, len(labels)))
+                continue
             proba = model.predict_proba(data).tolist()
-            agree = sum(1 for r, want in zip(mine, labels) if device.classes[device.class_index([r])] == want)
             ulps = max(ulp_distance(a, b) for r, want in zip(records, proba)
                        for a, b in zip(device.predict_proba(r), want))
             within = ulps <= SELF_CHECK_ULPS
-            all_ok = all_ok and within and agree == len(labels)
+            all_ok = all_ok and within
             echo("   %-28s labels agree on %d of %d rows; probabilities within %d ulp (bound %d)"
                  % ("", agree, len(labels), ulps, SELF_CHECK_ULPS))
 
@@ -170,13 +258,15 @@ def run(out_dir=None, rows=DEFAULT_ROWS, echo=print):
     gen.write_csv(sample, str(csv_path))
     echo("   wrote %d rows to %s; the last row has room_type 'walk_in' on purpose, to show an "
          "error row" % (len(sample), csv_path.name))
-    for name in ("next_hour_temp_hgb", "defrost_needed_hgb"):
+    for name in [j[0] for j in jobs if j[0] in ("next_hour_temp_hgb", "defrost_needed_hgb",
+                                                  "defrost_needed_pipeline")]:
         scored = out / ("sample_scored_%s.csv" % name)
         with open(csv_path, newline="", encoding="utf-8") as src, \
                 open(scored, "w", newline="", encoding="utf-8") as dst:
             counts = score_stream(devices[name], src, dst, id_column="reading_id")
-        echo("   %s -> %s: %d rows read, %d scored, %d with an error:"
-             % (name, scored.name, counts.rows, counts.scored, counts.errors))
+        echo("   %s -> %s: %d rows read, %d scored, %d with an error%s:"
+             % (name, scored.name, counts.rows, counts.scored, counts.errors,
+                " (its encoder maps an unknown room type to -1, as configured)" if name.endswith("pipeline") else ""))
         with open(scored, encoding="utf-8") as fh:
             for line in fh:
                 echo("     " + line.rstrip("\n"))
@@ -186,7 +276,8 @@ def run(out_dir=None, rows=DEFAULT_ROWS, echo=print):
     for path in sorted(out.iterdir()):
         if path.is_file():
             echo("   %8d  %s" % (path.stat().st_size, path))
-    echo("   try: boxwood inspect %s" % paths["next_hour_temp_hgb"])
-    echo("        boxwood score %s %s --id-column reading_id" % (paths["defrost_needed_hgb"], csv_path))
+    first = paths[jobs[0][0]]
+    echo("   try: boxwood inspect %s" % first)
+    echo("        boxwood score %s %s --id-column reading_id" % (first, csv_path))
     echo("all device raw scores bit-identical to scikit-learn: %s" % ("yes" if all_ok else "NO"))
     return 0 if all_ok else 1
