@@ -22,7 +22,6 @@ import zipfile
 from pathlib import Path
 
 import joblib
-import numpy as np
 import pytest
 
 import zoo

@@ -96,32 +96,14 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     generator); open files with ``newline=""`` so that CSV cells keep their line
     breaks. ``outfile`` needs a ``write`` method. Returns :data:`Counts`.
     """
-    if fmt not in FORMATS:
-        raise StreamError("unknown input format %r; expected one of %s" % (fmt, ", ".join(FORMATS)))
     if out_fmt is not None and out_fmt not in OUTPUT_FORMATS:
         raise StreamError("unknown output format %r; expected one of %s"
                           % (out_fmt, ", ".join(OUTPUT_FORMATS)))
-    lines = iter(infile)
-    head = []  # lines read while looking for the first non-blank one
-    first = None
-    for line in lines:
-        if not head and line.startswith("\ufeff"):
-            line = line[1:]  # a byte-order mark is not part of the data
-        head.append(line)
-        if line.strip():
-            first = line
-            break
-    if fmt == "auto":
-        fmt = "jsonl" if first is not None and first.lstrip().startswith("{") else "csv"
-    if csv is None and "csv" in (fmt, out_fmt):
+    if csv is None and out_fmt == "csv":
         raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
                           "use JSON Lines")
-    source = chain(head, lines)
+    fmt, id_name, rows, first = read_records(model, infile, fmt, id_column)
     values = output_columns(model)
-    if fmt == "csv":
-        id_name, rows = _csv_rows(model, source, id_column)
-    else:
-        id_name, rows = _jsonl_rows(model, source, id_column, first)
     if id_name is not None and (id_name in values or id_name == ERROR_COLUMN):
         raise StreamError("the id column %r has the name of an output column (%s)"
                           % (id_name, ", ".join(values + [ERROR_COLUMN])))
@@ -131,7 +113,10 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     writer = _Writer(out_fmt, outfile, DEFAULT_ID if per_row else id_name, values, per_row)
     n_rows = n_scored = n_errors = 0
     first_error = None
-    for ident, has_id, result, error in rows:
+    for n, where, ident, has_id, record, error in rows:
+        result = None
+        if error is None:
+            result, error = _score(model, record, n, where)
         if n_rows == 0:
             writer.start()
         n_rows += 1
@@ -147,6 +132,41 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     if hasattr(outfile, "flush"):
         outfile.flush()
     return Counts(n_rows, n_scored, n_errors, first_error)
+
+
+def read_records(model, infile, fmt="auto", id_column=None):
+    """Read records from CSV (with a header) or JSON Lines, lazily, for ``model``.
+
+    Returns ``(fmt, id_name, rows, first)``: the format read, the id column in use (or
+    None), a generator of ``(n, where, ident, has_id, record, error)`` per data row
+    (``n`` counts data rows from 1, ``where`` says "row n (line l)", ``record`` is a
+    dict ready for :meth:`Model.prepare`, or None when ``error`` says why the row could
+    not be read), and the first non-blank input line (None for empty input). Raises
+    :class:`StreamError` when the stream as a whole is unusable.
+    """
+    if fmt not in FORMATS:
+        raise StreamError("unknown input format %r; expected one of %s" % (fmt, ", ".join(FORMATS)))
+    lines = iter(infile)
+    head = []  # lines read while looking for the first non-blank one
+    first = None
+    for line in lines:
+        if not head and line.startswith("\ufeff"):
+            line = line[1:]  # a byte-order mark is not part of the data
+        head.append(line)
+        if line.strip():
+            first = line
+            break
+    if fmt == "auto":
+        fmt = "jsonl" if first is not None and first.lstrip().startswith("{") else "csv"
+    if csv is None and fmt == "csv":
+        raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
+                          "use JSON Lines")
+    source = chain(head, lines)
+    if fmt == "csv":
+        id_name, rows = _csv_rows(model, source, id_column)
+    else:
+        id_name, rows = _jsonl_rows(model, source, id_column, first)
+    return fmt, id_name, rows, first
 
 
 # ----------------------------------------------------------------------------- scoring
@@ -216,7 +236,7 @@ def _csv_rows(model, source, id_column):
                 n += 1
                 where = _where(n, done + 1)
                 done = reader.line_num
-                yield None, False, None, _message(where, None, "unreadable CSV: %s" % (exc,))
+                yield n, where, None, False, None, _message(where, None, "unreadable CSV: %s" % (exc,))
                 continue
             start, done = done + 1, reader.line_num
             if not cells:
@@ -225,16 +245,15 @@ def _csv_rows(model, source, id_column):
             where = _where(n, start)
             ident = cells[id_index] if id_index is not None and id_index < len(cells) else None
             if len(cells) != width:
-                yield ident, ident is not None, None, _message(
+                yield n, where, ident, ident is not None, None, _message(
                     where, None, "has %d cells, the header has %d" % (len(cells), width))
                 continue
             try:
                 record = model.record_from_text(dict((name, cells[i]) for name, i in features), n)
             except RecordError as exc:
-                yield ident, ident is not None, None, _message(where, exc.field, exc.reason)
+                yield n, where, ident, ident is not None, None, _message(where, exc.field, exc.reason)
                 continue
-            result, error = _score(model, record, n, where)
-            yield ident, ident is not None, result, error
+            yield n, where, ident, ident is not None, record, None
 
     return id_name, rows()
 
@@ -261,19 +280,18 @@ def _jsonl_rows(model, source, id_column, first):
             try:
                 obj = json.loads(line)
             except (ValueError, RecursionError) as exc:
-                yield None, False, None, _message(where, None, "not valid JSON: %s" % (exc,))
+                yield n, where, None, False, None, _message(where, None, "not valid JSON: %s" % (exc,))
                 continue
             if not isinstance(obj, dict):
-                yield None, False, None, _message(
+                yield n, where, None, False, None, _message(
                     where, None, "expected a JSON object, got %s" % _json_kind(obj))
                 continue
             has_id = key in obj
             ident = obj.get(key)
             if id_column is not None and not has_id:
-                yield None, False, None, _message(where, id_column, "the id field is absent")
+                yield n, where, None, False, None, _message(where, id_column, "the id field is absent")
                 continue
-            result, error = _score(model, obj, n, where)
-            yield ident, has_id, result, error
+            yield n, where, ident, has_id, obj, None
 
     return id_name, rows()
 

@@ -94,7 +94,6 @@ def read_tree_or_forest(model: Any) -> Ensemble:
     """A single decision tree or a random / extremely randomised forest."""
     from sklearn.base import is_classifier
 
-    name = type(model).__name__
     classifier = is_classifier(model)
     single = hasattr(model, "tree_")
     estimators = [model] if single else list(model.estimators_)

@@ -22,7 +22,6 @@ from __future__ import annotations
 import math
 from typing import Any, Dict, List, Optional, Tuple
 
-import numpy as np
 
 from ..ir import Ensemble
 from .common import UnsupportedModel, plain

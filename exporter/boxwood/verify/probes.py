@@ -23,9 +23,6 @@ Generated probes, in priority order, within a row budget (``DEFAULT_PROBE_ROWS``
 """
 from __future__ import annotations
 
-import csv
-import io
-import json
 import math
 from pathlib import Path
 from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
@@ -132,67 +129,25 @@ def _clean(v: Any) -> Any:
 
 
 def _file_records(path: Path, model: Any) -> Iterable[Tuple[int, str, Any]]:
+    """The data file's records, read as ``boxwood score`` reads them (CSV with a header or
+    JSON Lines, the artefact's missing tokens); the first unreadable row is an error."""
+    from boxwood_runtime.stream import StreamError, read_records
+
     if not path.is_file():
         raise FileNotFoundError("data file %r not found" % str(path))
     try:
-        text = path.read_text(encoding="utf-8")
+        with path.open(encoding="utf-8", newline="") as fh:
+            _, _, rows, _ = read_records(model, fh)
+            out = []
+            for n, where, _ident, _has_id, record, error in rows:
+                if error is not None:
+                    raise ValueError("data %s" % error)
+                out.append((n, "data " + where, record))
+            return out
     except UnicodeDecodeError as exc:
         raise ValueError("the data file %r is not UTF-8 text: %s" % (str(path), exc))
-    if text.startswith("\ufeff"):
-        text = text[1:]
-    first = next((line for line in text.splitlines() if line.strip()), "")
-    if first.lstrip().startswith("{"):
-        return list(_jsonl_records(text))
-    return list(_csv_records(text, model))
-
-
-def _jsonl_records(text: str) -> Iterable[Tuple[int, str, Any]]:
-    n = 0
-    for line_no, line in enumerate(text.splitlines(), 1):
-        if not line.strip():
-            continue
-        n += 1
-        where = "data row %d (line %d)" % (n, line_no)
-        try:
-            obj = json.loads(line)
-        except ValueError as exc:
-            raise ValueError("%s: not valid JSON: %s" % (where, exc))
-        if not isinstance(obj, dict):
-            raise ValueError("%s: expected a JSON object" % where)
-        yield n, where, obj
-
-
-def _csv_records(text: str, model: Any) -> Iterable[Tuple[int, str, Any]]:
-    from boxwood_runtime.scorer import RecordError
-
-    reader = csv.reader(io.StringIO(text, newline=""))
-    header = None
-    for cells in reader:
-        if cells:
-            header = [c.strip() for c in cells]
-            break
-    if header is None:
-        return
-    lacking = [f for f in input_names(model) if f not in header]
-    if lacking:
-        raise ValueError("the data file's CSV header lacks the model's column(s) %s; it has: %s"
-                         % (", ".join(repr(c) for c in lacking), ", ".join(header)))
-    index = {name: header.index(name) for name in input_names(model)}
-    n = 0
-    done = reader.line_num
-    for cells in reader:
-        start, done = done + 1, reader.line_num
-        if not cells:
-            continue
-        n += 1
-        where = "data row %d (line %d)" % (n, start)
-        if len(cells) != len(header):
-            raise ValueError("%s: has %d cells, the header has %d" % (where, len(cells), len(header)))
-        try:
-            record = model.record_from_text({name: cells[i] for name, i in index.items()}, n)
-        except RecordError as exc:
-            raise ValueError("%s: field %r: %s" % (where, exc.field, exc.reason))
-        yield n, where, record
+    except StreamError as exc:
+        raise ValueError("the data file %r: %s" % (str(path), exc))
 
 
 def input_names(model: Any) -> List[str]:
