@@ -480,8 +480,8 @@ def test_single_leaf_trees_and_empty_category_sets():
 
 
 # ----------------------------------------------------------------------------- trees and forests
-ONNX_FOREST_CASES = [n for n in getattr(zoo, "FOREST_CASES", [])
-                     if not n.startswith(("iforest", "ada_"))]  # isolation / samme: not written yet
+ONNX_FOREST_CASES = [n for n in zoo.FOREST_CASES
+                     if not n.startswith(("iforest", "ada_"))]  # those: test_every_zoo_case_exact_graph
 
 
 @pytest.mark.parametrize("name", ONNX_FOREST_CASES)
@@ -503,8 +503,130 @@ def test_trees_and_forests_bit_identical(name):
     assert to_bytes(read_onnx(model)) == data
 
 
-@pytest.mark.parametrize("name", [n for n in getattr(zoo, "FOREST_CASES", []) if n.startswith(("iforest", "ada_"))])
-def test_unsupported_post_transforms_are_refused_clearly(name):
+# ----------------------------------------------------------------------------- every zoo case
+ISOLATION_ULPS = 1  # score_samples: measured 1 ulp (onnxruntime's Pow vs numpy's power), 0 for onnx.reference
+
+
+def _preprocessed_rows(case, ensemble, read, rows):
+    """A pipeline's rows as the graph takes them: the raw fields put through the fitted
+    pipeline's own preprocessing steps (scikit-learn's pipeline[:-1].transform), then as
+    feature rows (None for NaN) of the ensemble read back from the graph."""
+    X = SourceModel(case.model, ensemble).matrix(rows)
+    pre = np.asarray(case.model[:-1].transform(X), dtype=np.float64)
+    return [[None if np.isnan(v) else float(v) for v in r] for r in pre]
+
+
+def _outputs_vs_sklearn(case, ensemble, ev, rows, graph_rows):
+    """Compare one evaluator's outputs on ``graph_rows`` with scikit-learn on ``rows``;
+    return the largest ulp distance of the transformed outputs."""
+    source = SourceModel(case.model, ensemble)
+    got = ev.evaluate(graph_rows)
+    X = source.matrix(rows)
+    assert first_mismatch(got.raw, source.raw(rows)) is None, ev.name
+    want_t = source.transformed(rows)
+    assert got.transformed.shape == want_t.shape
+    worst = max(ulp_distance(float(a), float(b)) for a, b in zip(got.transformed.ravel(), want_t.ravel()))
+    if ensemble.task != "regression":
+        assert [v.item() if hasattr(v, "item") else v for v in got.labels] == \
+            [v.item() if hasattr(v, "item") else v for v in case.model.predict(X)], ev.name
+    if ensemble.task == "outlier_detection":
+        out = ev.run(graph_rows)
+        decision = out["decision"].ravel()
+        want_d = case.model.decision_function(X)
+        # decision = score - offset in both: within the score's error, in absolute terms
+        score = want_t.ravel()
+        assert np.all(np.abs(decision - want_d) <= ISOLATION_ULPS * np.spacing(np.abs(score))), ev.name
+        assert np.array_equal(out["raw_score"].ravel(), source.raw(rows).ravel())
+    if ensemble.post_transform == "samme":
+        out = ev.run(graph_rows)  # the decision output IS scikit-learn's decision_function, bit for bit
+        assert np.array_equal(out["decision"].reshape(len(rows), -1),
+                              np.asarray(case.model.decision_function(X)).reshape(len(rows), -1))
+    return worst
+
+
+@pytest.mark.parametrize("name", zoo.ALL_CASES)
+def test_every_zoo_case_exact_graph(name, record_property):
+    """Every zoo case, exact graph: onnx.checker passes; onnxruntime (all probe rows) and
+    onnx.reference (a subset) both against scikit-learn: raw / exact values bit-identical
+    (AdaBoost: decision_function; isolation forests: the path-length sums), transformed
+    outputs within PROBA_ULPS (isolation score_samples within ISOLATION_ULPS, and
+    decision_function within the same absolute error), labels identical. Pipelines: the
+    graph is fed the features computed by the pipeline's own preprocessing steps."""
+    case, ensemble, _ = zoo.exported(name)
+    model = onnx_writer.to_model(ensemble)
+    onnx.checker.check_model(model, full_check=True)
+    read = read_onnx(model)
+    rows = probe_rows(case, ensemble, limit=1500)
+    if ensemble.fields is not None:
+        graph_rows = _preprocessed_rows(case, ensemble, read, rows)
+    else:
+        graph_rows = rows
+    limit = ISOLATION_ULPS if ensemble.task == "outlier_detection" else (
+        0 if ensemble.post_transform == "identity" else PROBA_ULPS)
+    worst = _outputs_vs_sklearn(case, ensemble, OnnxRuntimeEvaluator(model, read), rows, graph_rows)
+    assert worst <= limit
+    tagged = [list(r) + [i] for i, r in enumerate(rows)]  # row index carried at the end
+    some = [r[-1] for r in subset(tagged, len(case.rows), 120)]
+    worst_ref = _outputs_vs_sklearn(case, ensemble, OnnxReferenceEvaluator(model, read),
+                                    [rows[i] for i in some], [graph_rows[i] for i in some])
+    assert worst_ref <= limit
+    record_property("transformed_ulps_onnxruntime", worst)
+    record_property("transformed_ulps_reference", worst_ref)
+
+
+@pytest.mark.parametrize("name", [n for n in zoo.ALL_CASES if n not in zoo.CASES])
+def test_new_kinds_round_trip(name):
+    """JSON -> ONNX -> hub -> JSON: identical trees for every new kind. Isolation forests,
+    AdaBoost, trees and forests: the same artefact bytes. Pipelines: the same trees, base
+    values, features (names, kinds, categories), post-transform and classes; the raw
+    fields and every feature's source are dropped (the graph holds the tree part only),
+    and the provenance says so."""
+    from boxwood.readers.json_artefact import read_file
+
+    _, ensemble, data = zoo.exported(name)
+    start = read_file(data)
+    model = onnx_writer.to_model(start)
+    back = read_onnx(model)
+    assert back.trees == ensemble.trees and back.base_values == ensemble.base_values
+    assert back.post_transform == ensemble.post_transform
+    assert back.post_transform_params == ensemble.post_transform_params
+    if ensemble.fields is None:
+        assert to_bytes(back) == data
+        return
+    assert back.fields is None and all(f.source is None for f in back.features)
+    assert [(f.name, f.kind, f.categories) for f in back.features] == \
+        [(f.name, f.kind, f.categories) for f in ensemble.features]
+    assert back.classes == ensemble.classes and back.combine == ensemble.combine
+    assert back.compare_precision == ensemble.compare_precision
+    assert "not in the graph" in back.provenance["preprocessing"]
+    meta = {p.key: p.value for p in model.metadata_props}
+    stated = json.loads(meta["boxwood.preprocessing"])
+    assert stated["in_graph"] is False and stated["fields"] == ensemble.fields
+    assert [f["source"] for f in stated["features"]] == [f.source for f in ensemble.features]
+    assert "preprocessed feature vector" in model.doc_string
+
+
+@pytest.mark.parametrize("name", ["iforest", "ada_binary"])
+def test_legacy_refuses_samme_and_isolation_naming_the_exact_writer(name):
     _, ensemble, _ = zoo.exported(name)
-    with pytest.raises(ValueError, match="does not support post_transform"):
-        onnx_writer.to_model(ensemble)
+    with pytest.raises(ValueError, match="write the exact graph instead"):
+        onnx_legacy.to_model(ensemble)
+
+
+@pytest.mark.parametrize("name", ["iforest_subsets", "ada_multiclass", "pipe_hgbr_encoded", "pipe_gbc_strict_encoder"])
+def test_verify_passes_on_new_kinds(name, tmp_path):
+    """boxwood verify of the exact graph against the source model: the structural proof of
+    the trees, and the empirical check by onnxruntime. For a pipeline, the ONNX evaluator
+    feeds the graph the raw-field probe rows prepared by the device scorer's
+    preprocessing of the source ensemble, and the proof notes that the artefact holds the
+    tree part only."""
+    from boxwood.verify import verify
+
+    case, ensemble, _ = zoo.exported(name)
+    path = tmp_path / ("%s.onnx" % name)
+    onnx_writer.write(ensemble, path)
+    result = verify(case.model, path, probes=300, progress=False)
+    assert result.passed
+    if ensemble.fields is not None:
+        text = json.dumps(result.to_dict() if hasattr(result, "to_dict") else str(result), default=str)
+        assert "tree part only" in text

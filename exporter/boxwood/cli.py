@@ -256,6 +256,10 @@ def _write_onnx(args, ensemble, what):
             ("bytes", size),
             ("check", check)):
         print("  %-11s %s" % (key, value))
+    if ensemble.fields is not None:
+        print("  %-11s %s" % ("input", "NOT raw records: the graph holds the tree part only; its input is the "
+                              "preprocessed feature vector (after imputation/encoding); metadata "
+                              "boxwood.preprocessing lists each feature's field and steps (docs/onnx.md)"))
     if not ok:
         raise CheckFailed("%s: onnxruntime does not reproduce the model: %s" % (args.output, check))
     return 0

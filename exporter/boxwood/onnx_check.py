@@ -33,15 +33,16 @@ def _device(ensemble: Ensemble) -> Any:
 
 
 def hub_scores(ensemble: Ensemble, rows: Sequence[Sequence[Any]]) -> Tuple[np.ndarray, np.ndarray]:
-    """(raw, transformed) of ``ensemble`` on ``rows`` by the device scorer (float64)."""
+    """(exact values, transformed) of ``ensemble`` on ``rows`` by the device scorer (float64):
+    the raw scores, or for AdaBoost its decision values (``Model.exact_values``)."""
     model = _device(ensemble)
     raws, outs = [], []
     for i, row in enumerate(rows):
         raw = model.raw_scores(model.prepare(row, i))
-        raws.append(raw)
+        raws.append(model.exact_values(raw))  # AdaBoost: its decision values, as the ONNX evaluators
         outs.append(model.transform_raw(raw))
-    k = ensemble.n_outputs
-    return np.array(raws, dtype=np.float64).reshape(len(rows), k), np.array(outs, dtype=np.float64).reshape(len(rows), -1)
+    return (np.array(raws, dtype=np.float64).reshape(len(rows), -1),
+            np.array(outs, dtype=np.float64).reshape(len(rows), -1))
 
 
 def rows_as_float32(ensemble: Ensemble, rows: Sequence[Sequence[Any]]) -> List[List[Any]]:
@@ -97,7 +98,8 @@ def check_onnx(source: Any, expected: Optional[Ensemble] = None) -> Tuple[bool, 
                 worst, SELF_CHECK_ULPS)
         return True, ("%d reference rows reproduced by onnxruntime (raw scores exact, outputs within %d ulps)"
                       % (len(ref.rows), worst))
-    basis = expected if expected is not None else read
+    # (a pipeline's ensemble takes raw fields; its graph takes the features: use the trees read)
+    basis = expected if expected is not None and expected.fields is None else read
     if basis.reference is not None:
         rows = basis.reference.rows
     else:

@@ -41,7 +41,7 @@ from .common import UnsupportedModel
 TREE_OPS = ("TreeEnsemble", "TreeEnsembleRegressor", "TreeEnsembleClassifier")
 ML_DOMAIN = "ai.onnx.ml"
 # Ops allowed after the tree operator (they shape outputs or apply the post-transform).
-OUTPUT_OPS = ("Identity", "Add", "Sub", "Mul", "Div", "Neg", "Sigmoid", "Softmax", "Exp", "Concat", "Greater",
+OUTPUT_OPS = ("Identity", "Add", "Sub", "Mul", "Div", "Neg", "Sigmoid", "Softmax", "Exp", "Pow", "Concat", "Greater",
               "GreaterOrEqual", "Cast", "Reshape", "Squeeze", "Unsqueeze", "Flatten", "ArgMax", "Gather",
               "ZipMap", "Constant")
 # Ops allowed before it: the value path, and the mask that marks unknown category codes.
@@ -572,7 +572,9 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
                                 % (_node_label(n), ", ".join(OUTPUT_OPS)))
     # raw = tree output, then (ours, combine "mean") Div by constant tree counts, then Add base
     raw = tree.output[0] if tree.op_type != "TreeEnsembleClassifier" else None
-    if raw is not None and tree_post == "NONE":
+    # (a tree output that is itself a graph output is the raw score: boxwood's samme and
+    # isolation graphs divide it afterwards, which is not a mean of trees)
+    if raw is not None and tree_post == "NONE" and raw not in graph.outputs:
         for step in ("Div", "Add"):
             users = graph.consumers.get(raw, [])
             arith = [u for u in users if u.op_type == step]
@@ -608,6 +610,16 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
             raise OnnxReadError("%s applies %s and the graph applies %s after it; boxwood reads one post-transform"
                                 % (where, tree_post, ", ".join(sorted(found))))
         found.add({"LOGISTIC": "logistic", "SOFTMAX": "softmax"}[tree_post])
+    special = _special_transform(graph, raw, down) if raw is not None and tree_post == "NONE" else None
+    if special is not None:
+        kind, params = special
+        if kind == "samme":
+            found.discard("softmax")  # the probabilities' softmax belongs to samme
+        if found:
+            raise OnnxReadError("the graph applies %s and %s after %s; boxwood reads one post-transform"
+                                % (kind, ", ".join(sorted(found)), where))
+        found.add(kind)
+        info["params"] = params
     if len(found) > 1:
         raise OnnxReadError("the graph applies several post-transforms (%s) after %s" % (", ".join(sorted(found)), where))
     info["post"] = found.pop() if found else "identity"
@@ -628,6 +640,45 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
                     raise OnnxReadError("%s must compare the raw score with the constant 0" % _node_label(n))
                 info["binary_rule"] = "raw_gt_0" if n.op_type == "Greater" else "raw_ge_0"
     return info
+
+
+def _scalar(graph: _Graph, node: Any, other_than: str) -> Optional[float]:
+    """The scalar constant among ``node``'s inputs other than ``other_than``, or None."""
+    for name in node.input:
+        c = graph.const(name)
+        if name != other_than and c is not None and np.asarray(c).size == 1:
+            return float(np.asarray(c, dtype=np.float64).ravel()[0])
+    return None
+
+
+def _special_transform(graph: _Graph, raw: str, down: List[Any]) -> Optional[Tuple[str, Dict[str, float]]]:
+    """boxwood's isolation-forest and AdaBoost post-processing (docs/onnx.md):
+
+    * isolation: ``Pow(2, Neg(Div(raw, denominator)))``, ``Neg``, ``Sub(score, offset)``;
+    * samme: ``Div(raw, weight_total)`` feeding the decision, the probabilities' ``Softmax``.
+
+    Returns (post_transform, parameters) or None when the graph does neither."""
+    divs = [n for n in graph.consumers.get(raw, []) if n.op_type == "Div" and n.input[0] == raw]
+    pows = [n for n in down if n.op_type == "Pow"]
+    if pows:
+        if len(divs) != 1 or len(pows) != 1:
+            raise OnnxReadError("%s: boxwood reads a power after the trees only as an isolation forest's "
+                                "score -(2 ** -(raw / denominator))" % _node_label(pows[0]))
+        power = pows[0]
+        den = _scalar(graph, divs[0], raw)
+        base = graph.const(power.input[0])
+        subs = [n for n in down if n.op_type == "Sub"]
+        offset = _scalar(graph, subs[0], subs[0].input[0]) if len(subs) == 1 else None
+        if den is None or base is None or float(np.asarray(base).ravel()[0]) != 2.0 or offset is None:
+            raise OnnxReadError("%s: an isolation forest's score needs Pow(2, -(raw / constant)) and one Sub of a "
+                                "constant offset" % _node_label(power))
+        return "isolation", {"denominator": den, "offset": offset}
+    if len(divs) == 1 and raw in graph.outputs and any(n.op_type == "Softmax" for n in down):
+        total = _scalar(graph, divs[0], raw)
+        if total is None:
+            raise OnnxReadError("%s must divide the vote sums by a constant total weight" % _node_label(divs[0]))
+        return "samme", {"weight_total": total}
+    return None
 
 
 def read_onnx(source: Any) -> Ensemble:
@@ -706,6 +757,10 @@ def read_onnx(source: Any) -> Ensemble:
     # task, classes and the binary rule
     classes = info["classes"]
     task = "classification" if classes is not None else "regression"
+    if info["post"] == "isolation":
+        task = "outlier_detection"
+        if classes != [-1, 1]:
+            raise OnnxReadError("%s: an isolation forest graph labels rows -1 / 1, not %r" % (where, classes))
     binary_rule = None
     post = info["post"]
     if task == "classification" and k == 1:
@@ -745,6 +800,12 @@ def read_onnx(source: Any) -> Ensemble:
     provenance = meta.get("boxwood.provenance") if isinstance(meta.get("boxwood.provenance"), dict) else {}
     provenance = dict(provenance)
     provenance.setdefault("estimator", meta.get("boxwood.source_estimator") or "onnx:%s" % tree.op_type)
+    pre = meta.get("boxwood.preprocessing")
+    if isinstance(pre, dict) and pre.get("in_graph") is False:
+        # a pipeline's tree part: the graph takes the preprocessed features; the ensemble read
+        # here has no raw fields and no feature sources (they are not in the graph)
+        provenance["preprocessing"] = ("not in the graph: its input is the preprocessed feature vector; "
+                                       "metadata boxwood.preprocessing lists each feature's field and steps")
     provenance["onnx"] = {"producer": "%s %s" % (model.producer_name, model.producer_version),
                           "tree_operator": tree.op_type,
                           "opsets": {o.domain or "ai.onnx": o.version for o in model.opset_import}}
@@ -767,6 +828,7 @@ def read_onnx(source: Any) -> Ensemble:
         binary_rule=binary_rule,
         output_names=[str(o) for o in output_names],
         accepts_infinity=bool(semantics.get("accepts_infinity", True)) if exact_source else True,
+        post_transform_params=dict(info.get("params") or {}),
         provenance=provenance,
     )
     ref = meta.get("boxwood.reference")
@@ -907,6 +969,20 @@ class _OnnxEvaluator:
             self.ensemble.base_values))) else "any"
         self.output_names = [o.name for o in self.model.graph.output]
         self.raw_model, self._binary_column = _expose_raw(self.model)
+        self._prepare: Any = None
+
+    def use_source_preprocessing(self, source: Ensemble) -> None:
+        """Rows given to this evaluator are raw-field records of ``source`` (a pipeline's
+        ensemble) while the graph takes the preprocessed features (boxwood writes a
+        pipeline's tree part only): prepare each row with the device scorer's own
+        preprocessing of ``source`` (boxwood_runtime.scorer.Model.prepare) before the
+        graph. A record the preprocessing refuses raises RecordError (a ValueError)."""
+        if source.fields is None or self.ensemble.fields is not None:
+            return
+        from ..writers.onnx_writer import feature_preparer
+
+        self._prepare = feature_preparer(source)
+        self.name = "%s (fed the features preprocessed by boxwood's device scorer)" % type(self).name
 
     def properties(self) -> Dict[str, Any]:
         return {"input_precision": self.input_precision, "compare_precision": self.compare_precision,
@@ -914,6 +990,8 @@ class _OnnxEvaluator:
                 "transform_implementation": self.transform_implementation}
 
     def matrix(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
+        if self._prepare is not None:
+            rows = [self._prepare(r, i) for i, r in enumerate(rows)]
         return rows_to_matrix(self.ensemble, rows, self.dtype)
 
     def run(self, rows: Sequence[Sequence[Any]]) -> Dict[str, np.ndarray]:
@@ -931,6 +1009,12 @@ class _OnnxEvaluator:
     def _split(self, out: Dict[str, np.ndarray], n: int) -> Tuple[np.ndarray, np.ndarray, Optional[List[Any]]]:
         raw = np.asarray(out[RAW_OUTPUT], dtype=np.float64).reshape(n, -1)
         e = self.ensemble
+        if e.post_transform == "samme" and "decision" in out:
+            # the exact values of AdaBoost are its decision values (scorer.Model.exact_values)
+            raw = np.asarray(out["decision"], dtype=np.float64).reshape(n, -1)
+        if e.task == "outlier_detection":
+            score = np.asarray(out["score"], dtype=np.float64).reshape(n, -1)
+            return raw, score, [int(v) for v in np.asarray(out["label"]).ravel()]
         if e.task == "classification":
             probs = [v for k, v in out.items() if k != RAW_OUTPUT and np.asarray(v).dtype.kind == "f"
                      and np.asarray(v).ndim == 2]

@@ -152,6 +152,16 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     if not paths:
         raise ValueError("give at least one artefact to verify")
     opened: List[Artefact] = [open_artefact(p) for p in paths]
+    if getattr(source, "fields", None) is not None:
+        # An artefact holding a pipeline's tree part only (boxwood's ONNX graphs) takes the
+        # preprocessed features: evaluators that can, prepare the raw-field rows with the
+        # source's preprocessing (the device scorer's) before running the artefact.
+        for a in opened:
+            if getattr(a.ensemble, "fields", None) is None:
+                for ev in a.evaluators:
+                    hook = getattr(ev, "use_source_preprocessing", None)
+                    if hook is not None:
+                        hook(source)
     tol = _tolerances(source, abs_tol, rel_tol, tolerances)
     if not isinstance(probes, int) or isinstance(probes, bool) or probes < 0:
         raise ValueError("probes must be a whole number >= 0, got %r" % (probes,))

@@ -501,7 +501,12 @@ def _compare_metadata(proof: Proof, es: Ensemble, ea: Ensemble, src: Side, art: 
             sev = "fail" if key == "offset" or a is None or b is None else "value"
             proof.add(Finding("post-transform parameter", sev, "%s: source %r, artefact %r" % (key, a, b)))
     fields_s, fields_a = getattr(es, "fields", None), getattr(ea, "fields", None)
-    if fields_s != fields_a:
+    if fields_s is not None and fields_a is None and (ea.provenance or {}).get("preprocessing"):
+        # a pipeline's tree part (boxwood's ONNX graphs): the proof covers the trees on the
+        # preprocessed features; the preprocessing itself is outside the artefact
+        note("preprocessing", "the artefact holds the tree part only (%s); the proof compares the trees on "
+             "the preprocessed features, not the preprocessing" % ea.provenance["preprocessing"])
+    elif fields_s != fields_a:
         fail("fields", "raw record fields: source %r, artefact %r" % (fields_s, fields_a))
     elif len(es.features) == len(ea.features):
         for fs, fa in zip(es.features, ea.features):

@@ -209,6 +209,14 @@ def to_model(ensemble: Ensemble) -> Any:
     """The legacy ONNX ModelProto (float32 input, ai.onnx.ml opset 3) for ``ensemble``."""
     ensemble.check()
     refuse_unsupported(ensemble)
+    if ensemble.post_transform in ("samme", "isolation"):
+        # Their decision values are formed after the sum; in float32 they would not be the
+        # source's and raw_error_bound says nothing about them.
+        raise ModelError("the legacy float32 ONNX writer does not support post_transform %r (%s); write the "
+                         "exact graph instead (ai.onnx.ml opset 5, float64 or float32 input: boxwood export "
+                         "MODEL -o out.onnx [--input-type float32], without --legacy-float32)"
+                         % (ensemble.post_transform, "AdaBoost" if ensemble.post_transform == "samme"
+                            else "isolation forest"))
     onnx = _onnx()
     T = onnx.TensorProto
     kit = GraphKit(T.FLOAT)

@@ -78,7 +78,11 @@ MODE_MEMBER = 6
 CODE_OFFSET = 1.0
 # The lone member of a categorical split that sends no category left.
 NEVER_MEMBER = -1.0
-TRANSFORMS_SUPPORTED = ("identity", "exp", "logistic", "logistic_double", "softmax")
+TRANSFORMS_SUPPORTED = ("identity", "exp", "logistic", "logistic_double", "softmax", "samme", "isolation")
+META_PREPROCESSING = "boxwood.preprocessing"
+# Names of the extra outputs of AdaBoost (samme) and isolation forest graphs.
+DECISION_NAME = "decision"
+SCORE_NAME = "score"
 
 
 def _onnx():
@@ -306,14 +310,17 @@ def _label_tensor(classes: List[Any]) -> Tuple[np.ndarray, int]:
 
 
 def refuse_unsupported(ensemble: Ensemble) -> None:
-    """Raise ModelError for what the ONNX writers cannot state yet."""
-    if getattr(ensemble, "fields", None):
-        raise ModelError("the ONNX writer does not write preprocessing steps (this ensemble comes from a "
-                         "pipeline with raw fields %s); export it as a JSON artefact, or export the final "
-                         "estimator alone" % ", ".join(map(str, ensemble.fields[:5])))
+    """Raise ModelError for what the ONNX writers cannot state yet.
+
+    A pipeline's preprocessing is not refused: the graph holds the tree part only and its
+    input is the preprocessed feature vector (metadata ``boxwood.preprocessing`` says how
+    each feature is computed from the raw fields; docs/onnx.md, "Pipelines")."""
     if ensemble.post_transform not in TRANSFORMS_SUPPORTED:
         raise ModelError("the ONNX writer does not support post_transform %r yet; supported: %s"
                          % (ensemble.post_transform, ", ".join(TRANSFORMS_SUPPORTED)))
+    if ensemble.post_transform == "isolation" and ensemble.post_transform_params["denominator"] == 0.0:
+        raise ModelError("an isolation forest fitted on single-sample trees (denominator 0: scikit-learn sets "
+                         "every score to -1) is not written to ONNX")
 
 
 def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
@@ -331,6 +338,10 @@ def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
         else:
             kit.op("Identity", [raw], "prediction", output="prediction")
         return [helper.make_tensor_value_info("prediction", kit.float_type, ["N", k]), raw_info]
+    if ensemble.task == "outlier_detection":
+        return _isolation_outputs(kit, ensemble, raw, raw_info)
+    if post == "samme":
+        return _samme_outputs(kit, ensemble, raw, raw_info)
     if ensemble.task != "classification":
         raise ModelError("the ONNX writer does not support task %r yet" % ensemble.task)
     classes = list(ensemble.classes)
@@ -370,6 +381,63 @@ def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
             raw_info]
 
 
+def _isolation_outputs(kit: GraphKit, ensemble: Ensemble, raw: str, raw_info: Any) -> List[Any]:
+    """IsolationForest: raw = summed path lengths; score = -(2 ** -(raw / denominator))
+    (scikit-learn's score_samples, same operations in the same order), decision =
+    score - offset (decision_function), label -1 where decision < 0, else 1 (predict)."""
+    helper, T = kit.onnx.helper, kit.onnx.TensorProto
+    params = ensemble.post_transform_params
+    q = kit.op("Div", [raw, kit.const("isolation_denominator", params["denominator"])], "mean_path_ratio")
+    power = kit.op("Pow", [kit.const("two", 2.0), kit.op("Neg", [q], "minus_ratio")], "two_to_minus_ratio")
+    score = kit.op("Neg", [power], SCORE_NAME, output=SCORE_NAME)
+    decision = kit.op("Sub", [score, kit.const("isolation_offset", params["offset"])], DECISION_NAME,
+                      output=DECISION_NAME)
+    inlier = kit.op("GreaterOrEqual", [decision, kit.const("zero", 0.0)], "is_inlier")  # not (decision < 0)
+    index = kit.op("Cast", [inlier], "label_index_2d", to=T.INT64)
+    index = kit.op("Reshape", [index, kit.const("flat", [-1], dtype=np.int64)], "label_index")
+    kit.op("Gather", [kit.const("outlier_labels", [-1, 1], dtype=np.int64), index], "label", output="label", axis=0)
+    return [helper.make_tensor_value_info("label", T.INT64, ["N"]),
+            helper.make_tensor_value_info(SCORE_NAME, kit.float_type, ["N", 1]),
+            helper.make_tensor_value_info(DECISION_NAME, kit.float_type, ["N", 1]),
+            raw_info]
+
+
+def _samme_outputs(kit: GraphKit, ensemble: Ensemble, raw: str, raw_info: Any) -> List[Any]:
+    """AdaBoost (SAMME): raw = per-class vote sums; decision d = raw / weight_total (two
+    classes: -d0 + d1, in that order), probabilities softmax(d / (K - 1)) (two classes:
+    softmax([-d / 2, d / 2])), label argmax d (two classes: d > 0 -> classes[1]): the
+    operations of scikit-learn's AdaBoostClassifier.decision_function / predict_proba /
+    predict (and of boxwood_runtime.scorer.samme_decision / transform)."""
+    helper, T = kit.onnx.helper, kit.onnx.TensorProto
+    k = ensemble.n_outputs
+    classes = list(ensemble.classes)
+    labels, label_type = _label_tensor(classes)
+    label_const = kit.const("class_labels", labels, dtype=labels.dtype)
+    d = kit.op("Div", [raw, kit.const("samme_weight_total", ensemble.post_transform_params["weight_total"])],
+               "class_decision")
+    if k == 2:
+        d0 = kit.op("Gather", [d, kit.const("column_0", [0], dtype=np.int64)], "decision_0", axis=1)
+        d1 = kit.op("Gather", [d, kit.const("column_1", [1], dtype=np.int64)], "decision_1", axis=1)
+        decision = kit.op("Add", [kit.op("Neg", [d0], "minus_decision_0"), d1], DECISION_NAME, output=DECISION_NAME)
+        pair = kit.op("Concat", [kit.op("Neg", [decision], "minus_decision"), decision], "decision_pair", axis=1)
+        scaled = kit.op("Div", [pair, kit.const("two", 2.0)], "decision_halves")
+        positive = kit.op("Greater", [decision, kit.const("zero", 0.0)], "is_positive")
+        index = kit.op("Cast", [positive], "class_index_2d", to=T.INT64)
+        index = kit.op("Reshape", [index, kit.const("flat", [-1], dtype=np.int64)], "class_index")
+        width = 1
+    else:
+        decision = kit.op("Identity", [d], DECISION_NAME, output=DECISION_NAME)
+        scaled = kit.op("Div", [decision, kit.const("classes_minus_one", float(k - 1))], "decision_scaled")
+        index = kit.op("ArgMax", [decision], "class_index", axis=1, keepdims=0)
+        width = k
+    kit.op("Softmax", [scaled], "probabilities", output="probabilities", axis=1)
+    kit.op("Gather", [label_const, index], "label", output="label", axis=0)
+    return [helper.make_tensor_value_info("label", label_type, ["N"]),
+            helper.make_tensor_value_info("probabilities", kit.float_type, ["N", len(classes)]),
+            helper.make_tensor_value_info(DECISION_NAME, kit.float_type, ["N", width]),
+            raw_info]
+
+
 # ----------------------------------------------------------------------------- metadata
 def _json_number(v: Any) -> Any:
     if isinstance(v, float) and not math.isfinite(v):
@@ -398,6 +466,7 @@ def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, varia
         "output_names": list(ensemble.output_names),
         "leading_base_trees": leading_base_trees,
         "category_code_offset": CODE_OFFSET,
+        "post_transform_params": dict(ensemble.post_transform_params),
     }
     meta = {
         META_FORMAT: META_FORMAT_VALUE,
@@ -409,14 +478,71 @@ def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, varia
         META_PROVENANCE: json.dumps(prov, sort_keys=True, default=str),
     }
     ref = ensemble.reference
+    rows = ref.rows if ref is not None else None
+    if ensemble.fields is not None:
+        meta[META_PREPROCESSING] = json.dumps(preprocessing_statement(ensemble), sort_keys=True, allow_nan=False)
+        if ref is not None:
+            rows = preprocessed_rows(ensemble, ref.rows)
     if ref is not None:
         meta[META_REFERENCE] = json.dumps({
-            "rows": [[_json_number(v) for v in row] for row in ref.rows],
+            "rows": [[_json_number(v) for v in row] for row in rows],
             "raw": [[_json_number(v) for v in r] for r in ref.raw],
             "transformed": [[_json_number(v) for v in r] for r in ref.transformed],
         }, allow_nan=False)
     meta.update(extra or {})
     return meta
+
+
+def preprocessing_statement(ensemble: Ensemble) -> Dict[str, Any]:
+    """What metadata ``boxwood.preprocessing`` says for a pipeline's ensemble: the graph
+    holds the tree part only; its input is the preprocessed feature vector; per feature,
+    the raw field it comes from and the steps (the JSON artefact's ``source``)."""
+    return {
+        "in_graph": False,
+        "graph_input": "the preprocessed feature vector (after imputation and encoding), in feature order",
+        "fields": list(ensemble.fields or []),
+        "features": [{"name": f.name, "source": f.source} for f in ensemble.features],
+    }
+
+
+def preprocessed_rows(ensemble: Ensemble, rows: Sequence[Sequence[Any]]) -> List[List[Any]]:
+    """Raw-field records -> feature rows (numbers, category values, None), by the device
+    scorer's own preprocessing (boxwood_runtime.scorer.Model.prepare)."""
+    prepare = feature_preparer(ensemble)
+    return [prepare(row, i) for i, row in enumerate(rows)]
+
+
+def feature_preparer(ensemble: Ensemble) -> Any:
+    """A function (record, row index) -> the record's feature row, in the hub's row form
+    (a category value for a categorical feature, None when missing), computed by the
+    device scorer's preprocessing of ``ensemble`` (which must carry ``fields``)."""
+    from boxwood_runtime import scorer
+
+    from .json_artefact import to_document
+
+    bare = ensemble if ensemble.reference is None else _without_reference(ensemble)
+    model = scorer.Model(to_document(bare), dict(scorer.DEFAULT_LIMITS), unknown_category="as_missing")
+    feats = ensemble.features
+
+    def prepare(record: Sequence[Any], row: int = 0) -> List[Any]:
+        x = model.prepare(list(record), row)
+        out: List[Any] = []
+        for f, v in zip(feats, x):
+            if v != v:
+                out.append(None)
+            elif f.is_categorical:
+                out.append(f.categories[int(v)])
+            else:
+                out.append(float(v))
+        return out
+
+    return prepare
+
+
+def _without_reference(ensemble: Ensemble) -> Ensemble:
+    import dataclasses
+
+    return dataclasses.replace(ensemble, reference=None)
 
 
 def assemble(kit: GraphKit, ensemble: Ensemble, input_type: int, outputs: List[Any],
@@ -440,7 +566,10 @@ def _doc(ensemble: Ensemble) -> str:
     names = ", ".join(f.name + (" (category code)" if f.is_categorical else "") for f in ensemble.features)
     return ("Tree ensemble exported by boxwood from %s. Input columns in this order: %s. "
             "Missing values are NaN; a categorical column takes the index of the category in "
-            "metadata boxwood.categories." % (ensemble.provenance.get("estimator", "a model"), names))
+            "metadata boxwood.categories." % (ensemble.provenance.get("estimator", "a model"), names)
+            + (" The model's preprocessing is NOT in this graph: the input is the preprocessed feature "
+               "vector (after imputation and encoding); metadata boxwood.preprocessing lists each feature's "
+               "raw field and steps." if ensemble.fields is not None else ""))
 
 
 # ----------------------------------------------------------------------------- entry points
