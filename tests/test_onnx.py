@@ -630,3 +630,37 @@ def test_verify_passes_on_new_kinds(name, tmp_path):
     if ensemble.fields is not None:
         text = json.dumps(result.to_dict() if hasattr(result, "to_dict") else str(result), default=str)
         assert "tree part only" in text
+
+
+def test_verify_legacy_graph_with_categorical_chains(tmp_path):
+    """The legacy graph writes categorical sets as chains of equality tests, so its trees
+    are shaped differently from the source's. The verifier walks both trees over the same
+    input regions: every input reaches leaves whose values agree within float32 rounding,
+    so the routing differences are notes, the structure check passes, and the bound and
+    the empirical check judge the float32 leaf error. Moving one category in the source
+    tree's set is still a structural failure (a planted fault)."""
+    from boxwood.verify import verify
+
+    case, ensemble, _ = zoo.exported("hgbr_categorical")
+    path = tmp_path / "legacy.onnx"
+    onnx_writer.write(ensemble, path, legacy=True)
+    tol = 1e-3  # above the float32 leaf and summation error of this model (~8e-4)
+    result = verify(case.model, path, probes=300, progress=False, abs_tol=tol)
+    structure = [c for c in result.checks if c.name == "structure"]
+    assert result.passed and structure and all(c.status == "pass" for c in structure)
+
+    faulty = dataclasses.replace(ensemble, trees=[dataclasses.replace(t) for t in ensemble.trees])
+    for t in faulty.trees:
+        cats = [i for i, c in enumerate(t.left_categories) if c]
+        if cats:
+            i = cats[0]
+            codes = set(t.left_categories[i])
+            moved = next(c for c in range(len(ensemble.features[t.feature[i]].categories)) if c not in codes)
+            t.left_categories = list(t.left_categories)
+            t.left_categories[i] = tuple(sorted(codes | {moved}))
+            break
+    bad = tmp_path / "legacy-moved.onnx"
+    onnx_writer.write(faulty, bad, legacy=True)
+    result = verify(case.model, bad, probes=300, progress=False, abs_tol=tol)
+    assert not result.passed
+    assert any(c.name == "structure" and c.status == "fail" for c in result.checks)

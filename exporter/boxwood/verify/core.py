@@ -292,7 +292,8 @@ def _verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: SourceE
         summary = "%d difference%s in routing or metadata (%s)" % (
             n_fail, "" if n_fail == 1 else "s", ", ".join(sorted({f.kind for f in fails})))
     elif n_value:
-        summary = "routing identical; %d value difference%s (judged by the bound)" % (n_value, "" if n_value == 1 else "s")
+        summary = "routing %s; %d value difference%s (judged by the bound)" % (
+            "equivalent (see notes)" if n_note else "identical", n_value, "" if n_value == 1 else "s")
     else:
         summary = "%d trees, %d nodes paired; no differences" % (proof.trees_compared, proof.nodes_compared)
     details = ["%s: %s: %s" % (f.location(), f.kind, f.message) for f in fails]

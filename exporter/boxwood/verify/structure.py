@@ -289,6 +289,10 @@ class _PairResult:
     same_bits: bool  # every input gets bit-identical leaf values from both trees
     nodes: int
     coarse: bool = False
+    # every input gets leaf values that agree within float32 rounding, |a - b| <= 2**-24 max(|a|, |b|)
+    # (the unit roundoff of binary32, IEEE 754-2019 3.6): a tree rewritten with other nodes
+    # (e.g. categorical sets as equality chains) whose leaves were rounded to float32
+    close: bool = False
 
 
 def _compare_pair(ctx: _Context, proof: Proof, output: int, si: int, ai: int, ts: Tree, ta: Tree) -> _PairResult:
@@ -386,6 +390,10 @@ def _compare_pair(ctx: _Context, proof: Proof, output: int, si: int, ai: int, ts
         if result.same_bits:
             f.severity = "note"
             f.message += " (no effect: every input reaching here gets equal leaf values from both trees)"
+        elif result.close:
+            f.severity = "note"
+            f.message += (" (the trees are shaped differently, but every input gets leaf values that agree "
+                          "within float32 rounding; the value differences are bounded below)")
         proof.add(f)
     result.nodes = nodes
     return result
@@ -404,6 +412,7 @@ def _joint_worst(ctx: _Context, ts: Tree, ta: Tree) -> _PairResult:
     """Largest |leaf_s - leaf_a| over leaf pairs one input reaches together (exact)."""
     worst = Fraction(0)
     same = True
+    close = True
     steps = 0
     stack: List[Tuple[int, int, Dict[int, Any]]] = [(0, 0, {})]
     seen_pairs = set()
@@ -425,8 +434,10 @@ def _joint_worst(ctx: _Context, ts: Tree, ta: Tree) -> _PairResult:
             vs, va = ts.value[ns], ta.value[na]
             if not _same_bits(vs, va):
                 same = False
-                worst = max(worst, abs(Fraction(vs) - Fraction(va)))
-    return _PairResult(worst, same, 0)
+                gap = abs(Fraction(vs) - Fraction(va))
+                worst = max(worst, gap)
+                close = close and gap <= Fraction(1, 2 ** 24) * max(abs(Fraction(vs)), abs(Fraction(va)))
+    return _PairResult(worst, same, 0, close=close and not same)
 
 
 def _left_text(t: float, precision: str) -> str:
