@@ -456,7 +456,6 @@ class Model:
             self.categories.append(list(cats))
             self._codes.append(codes)
         _need(len(set(self.feature_names)) == len(self.feature_names), "feature names repeat")
-        self._index = dict((n, i) for i, n in enumerate(self.feature_names))
         self.n_features = len(self.feature_names)
         self._read_preprocessing(inputs, feats, limits)
 
@@ -666,9 +665,9 @@ class Model:
     def prepare(self, record, row=None):
         """Validate one record and return the list of values the trees compare.
 
-        ``record`` is a dict keyed by feature name (other keys are ignored) or a
-        sequence in feature order. None or NaN means missing. Raises RecordError
-        naming the row and the field.
+        ``record`` is a dict keyed by input name (``input_names``: the features, or a
+        pipeline's raw fields; other keys are ignored) or a sequence in that order. None
+        or NaN means missing. Raises RecordError naming the row and the field.
         """
         names = self.input_names
         if isinstance(record, dict):
