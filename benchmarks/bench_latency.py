@@ -73,7 +73,7 @@ def fit_models(seed=0):
 
 def bench(label, est, make_X, one_rows, one_repeats, batch_rows, batch_repeats):
     from boxwood.export import build
-    from boxwood.writers.json_artefact import to_bytes
+    from boxwood.formats.json.writer import to_bytes
     from boxwood_runtime import load
     from boxwood_runtime.batch import BatchModel
 

@@ -218,7 +218,7 @@ def test_labels_on_exact_ties_follow_sklearn(name):
     import copy
 
     from boxwood.export import build
-    from boxwood.writers.json_artefact import to_bytes
+    from boxwood.formats.json.writer import to_bytes
 
     case = zoo.fitted(name)
     est = copy.deepcopy(case.model)
@@ -429,7 +429,7 @@ def test_forest_kinds_match_sklearn_and_scorer(name):
     probabilities match scikit-learn's own (decision values bit for bit, isolation
     forest scores too since both use numpy's power; probabilities within
     TRANSFORM_ULPS)."""
-    from boxwood.source import SourceModel
+    from boxwood.sources.model import SourceModel
 
     from test_conformance import probe_rows as ir_probe_rows  # probes from the exported trees
 

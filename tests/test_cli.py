@@ -185,7 +185,7 @@ def test_score_through_stdin_and_stdout_in_a_subprocess(exported, tmp_path, caps
     device = device_for(artefact)
     n = 30
     text = jsonl_text(device.feature_names, case.rows[:n], ids_for(n))
-    proc = subprocess.run([sys.executable, "-m", "boxwood.cli", "score", str(artefact)],
+    proc = subprocess.run([sys.executable, "-m", "boxwood", "score", str(artefact)],
                           input=text.encode(), capture_output=True, cwd=str(tmp_path), timeout=120)
     assert proc.returncode == 0, proc.stderr
     rows = parse_jsonl(proc.stdout.decode("utf-8"))
@@ -194,7 +194,7 @@ def test_score_through_stdin_and_stdout_in_a_subprocess(exported, tmp_path, caps
     # A malformed line makes an error row and exit code 2, nothing is lost.
     lines = text.splitlines()
     lines[4] = lines[4][:-3]
-    proc = subprocess.run([sys.executable, "-m", "boxwood.cli", "score", str(artefact), "-", "-o", "-"],
+    proc = subprocess.run([sys.executable, "-m", "boxwood", "score", str(artefact), "-", "-o", "-"],
                           input="\n".join(lines).encode(), capture_output=True, cwd=str(tmp_path), timeout=120)
     assert proc.returncode == 2
     rows = parse_jsonl(proc.stdout.decode("utf-8"))
@@ -204,7 +204,7 @@ def test_score_through_stdin_and_stdout_in_a_subprocess(exported, tmp_path, caps
 
 
 def test_help_and_version_in_a_subprocess(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "boxwood.cli", "--help"], capture_output=True,
+    proc = subprocess.run([sys.executable, "-m", "boxwood", "--help"], capture_output=True,
                           cwd=str(tmp_path), timeout=120)
     assert proc.returncode == 0
     out = proc.stdout.decode()
@@ -212,7 +212,7 @@ def test_help_and_version_in_a_subprocess(tmp_path):
         assert "\n    %s " % command in out
     import boxwood
 
-    proc = subprocess.run([sys.executable, "-m", "boxwood.cli", "--version"], capture_output=True,
+    proc = subprocess.run([sys.executable, "-m", "boxwood", "--version"], capture_output=True,
                           cwd=str(tmp_path), timeout=120)
     assert proc.returncode == 0 and proc.stdout.decode().startswith("boxwood %s" % boxwood.__version__)
 

@@ -28,7 +28,7 @@ import numpy as np
 import pytest
 
 import boxwood_runtime
-from boxwood.source import SourceModel
+from boxwood.sources.model import SourceModel
 from boxwood_runtime.scorer import ulp_distance
 
 import zoo
@@ -275,7 +275,7 @@ def test_unsupported_pipeline_step_is_named():
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import StandardScaler
 
-    from boxwood.readers import UnsupportedModel, read_model
+    from boxwood.sources import UnsupportedModel, read_model
 
     case = zoo.fitted("gbr_squared_error")
     pipe = make_pipeline(StandardScaler(), case.model.__class__(n_estimators=5)).fit(case.X, case.y)

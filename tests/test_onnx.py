@@ -20,7 +20,7 @@ Stated bounds, checked here:
 - exact graph, float64 or float32 input: raw scores bit-identical; probabilities and
   exp predictions within PROBA_ULPS units in the last place; labels identical;
 - legacy float32 graph: zero decision flips on float32 threshold probes (leaf by leaf);
-  raw scores within the bound the writer states (writers/onnx_legacy.raw_error_bound).
+  raw scores within the bound the writer states (formats/onnx/legacy.raw_error_bound).
 """
 from __future__ import annotations
 
@@ -35,15 +35,14 @@ onnx = pytest.importorskip("onnx")
 pytest.importorskip("onnxruntime")
 
 from boxwood.ir import LEAF, Ensemble, Tree  # noqa: E402
-from boxwood.readers.onnx_reader import (  # noqa: E402
-    OnnxReferenceEvaluator,
-    OnnxRuntimeEvaluator,
-    read_onnx,
-    rows_to_matrix,
-)
-from boxwood.source import SourceModel  # noqa: E402
-from boxwood.writers import onnx_legacy, onnx_writer  # noqa: E402
-from boxwood.writers.json_artefact import to_bytes  # noqa: E402
+from boxwood.formats.onnx.evaluators import OnnxReferenceEvaluator, OnnxRuntimeEvaluator, rows_to_matrix  # noqa: E402
+from boxwood.formats.onnx.reader import read_onnx  # noqa: E402
+from boxwood.sources.model import SourceModel  # noqa: E402
+from boxwood.formats.onnx import legacy as onnx_legacy  # noqa: E402
+from boxwood.formats.onnx import writer as onnx_writer  # noqa: E402
+from boxwood.formats.onnx.exact import to_model  # noqa: E402
+from boxwood.numerics import float32_floor  # noqa: E402
+from boxwood.formats.json.writer import to_bytes  # noqa: E402
 from boxwood_runtime.scorer import ulp_distance  # noqa: E402
 
 import zoo  # noqa: E402
@@ -64,7 +63,7 @@ def rounding_probes(ensemble):
             f = t.feature[i]
             if f < 0 or t.left_categories[i] is not None or not math.isfinite(t.threshold[i]):
                 continue
-            lo = np.float32(onnx_legacy.float32_threshold(t.threshold[i]))
+            lo = np.float32(float32_floor(t.threshold[i]))
             hi = np.nextafter(lo, np.float32(np.inf))
             if not np.isfinite(hi) or (f, float(lo)) in seen:
                 continue
@@ -97,7 +96,7 @@ def subset(rows, n_data, limit=REFERENCE_ROWS):
 @pytest.fixture(scope="module", params=zoo.CASES)
 def exact(request):
     case, ensemble, _ = zoo.exported(request.param)
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     rows = all_rows(case, ensemble)
     source = SourceModel(case.model, ensemble)
     return case, ensemble, model, rows, source
@@ -112,7 +111,7 @@ def first_mismatch(got, want):
 def test_checker_passes(exact):
     case, ensemble, model, rows, source = exact
     onnx.checker.check_model(model, full_check=True)
-    onnx.checker.check_model(onnx_writer.to_model(ensemble, "float32"), full_check=True)
+    onnx.checker.check_model(to_model(ensemble, "float32"), full_check=True)
     onnx.checker.check_model(onnx_legacy.to_model(ensemble), full_check=True)
     ops = {(n.domain, n.op_type) for n in model.graph.node}
     assert ("ai.onnx.ml", "TreeEnsemble") in ops
@@ -159,7 +158,7 @@ def test_outputs_match_sklearn(exact):
 def test_float32_input_graph_bit_identical(exact):
     """input_type="float32": scikit-learn given the same float32 values (as float64)."""
     case, ensemble, model, rows, source = exact
-    m32 = onnx_writer.to_model(ensemble, "float32")
+    m32 = to_model(ensemble, "float32")
     rows32 = [list(r) for r in rows]
     X = rows_to_matrix(ensemble, rows32, np.float32).astype(np.float64)
     for i, r in enumerate(rows32):
@@ -185,12 +184,12 @@ def test_float32_rounding_is_reproduced_at_thresholds():
         row[f] = v
         rows.append(row)
     source = SourceModel(case.model, ensemble)
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     assert first_mismatch(OnnxRuntimeEvaluator(model, ensemble).raw(rows), source.raw(rows)) is None
     assert first_mismatch(OnnxReferenceEvaluator(model, ensemble).raw(rows[:150]), source.raw(rows[:150])) is None
     # The probes matter: without the rounding step, the trees would decide differently.
     plain = dataclasses.replace(ensemble, compare_precision="float64")
-    unrounded = OnnxRuntimeEvaluator(onnx_writer.to_model(plain), plain).raw(rows)
+    unrounded = OnnxRuntimeEvaluator(to_model(plain), plain).raw(rows)
     assert first_mismatch(unrounded, source.raw(rows)) is not None
 
 
@@ -205,7 +204,7 @@ def test_unknown_category_codes_route_as_missing():
     row[j] = None
     X = rows_to_matrix(ensemble, [row] * 5)
     X[1:, j] = [n, -1.0, 0.5, 1e9]
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     source = SourceModel(case.model, ensemble)
     unseen = list(row)
     unseen[j] = "not-a-band"
@@ -218,7 +217,7 @@ def test_unknown_category_codes_route_as_missing():
 def _add_base_after(ensemble):
     """The same trees with the base value added by an Add node after the tree sum."""
     zero = dataclasses.replace(ensemble, base_values=[0.0] * ensemble.n_outputs, reference=None)
-    model = onnx_writer.to_model(zero)
+    model = to_model(zero)
     g = model.graph
     tree = [n for n in g.node if n.op_type == "TreeEnsemble"][0]
     tree.output[0] = "tree_sum"
@@ -243,7 +242,7 @@ def test_summation_order_findings(name, record_property):
     case, ensemble, _ = zoo.exported(name)
     rows = case.rows
     want = SourceModel(case.model, ensemble).raw(rows)
-    leading = onnx_writer.to_model(ensemble)
+    leading = to_model(ensemble)
     after = _add_base_after(ensemble)
     assert first_mismatch(OnnxRuntimeEvaluator(leading, ensemble).raw(rows), want) is None
     assert first_mismatch(OnnxReferenceEvaluator(leading, ensemble).raw(rows[:120]), want[:120]) is None
@@ -278,7 +277,7 @@ def float32_rows(case, ensemble):
                     or (f, t.threshold[i]) in seen:
                 continue
             seen.add((f, t.threshold[i]))
-            t32 = np.float32(onnx_legacy.float32_threshold(t.threshold[i]))
+            t32 = np.float32(float32_floor(t.threshold[i]))
             with np.errstate(over="ignore"):
                 near = np.float32(t.threshold[i])
             for v in (t32, np.nextafter(t32, np.float32(-np.inf)), np.nextafter(t32, np.float32(np.inf)), near):
@@ -393,7 +392,7 @@ def test_float32_threshold_rule():
     down32 = lambda v: np.nextafter(np.float32(v), np.float32(-np.inf))  # noqa: E731
     with np.errstate(over="ignore"):
         for t in ts:
-            t32 = onnx_legacy.float32_threshold(t)
+            t32 = float32_floor(t)
             assert t32 <= t and float(np.float32(t32)) == t32
             assert float(up32(t32)) > t or t32 == math.inf
             for x in (np.float32(t32), up32(t32), down32(t32)):
@@ -416,7 +415,7 @@ def test_legacy_categorical_chains():
 @pytest.mark.parametrize("name", zoo.CASES)
 def test_json_onnx_hub_json_is_identical(name):
     _, ensemble, data = zoo.exported(name)
-    from boxwood.readers.json_artefact import read_file
+    from boxwood.formats.json.reader import read_file
 
     start = read_file(data)
     back = read_onnx(onnx_writer.to_bytes(start))
@@ -427,7 +426,7 @@ def test_json_onnx_hub_json_is_identical(name):
 
 def test_metadata_names_the_model():
     case, ensemble, _ = zoo.exported("hgbr_categorical_nan")
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     meta = {p.key: p.value for p in model.metadata_props}
     assert json.loads(meta["boxwood.feature_names"]) == list(case.X.columns)
     cats = json.loads(meta["boxwood.categories"])
@@ -445,11 +444,11 @@ def test_mean_of_trees_is_exact():
     (checked against the hub's stated formula computed here with numpy in tree order)."""
     case, ensemble, _ = zoo.exported("hgbr_nan")
     mean = dataclasses.replace(ensemble, combine="mean", reference=None)
-    model = onnx_writer.to_model(mean)
+    model = to_model(mean)
     rows = case.rows[:300]
     leaf_sum = SourceModel(case.model, ensemble).raw(rows)[:, 0]
     # (base + l1 + ... + ln) - base is not exactly l1 + ... + ln, so recompute from leaves.
-    ids = OnnxRuntimeEvaluator(onnx_writer.to_model(leaf_id_ensemble(ensemble)), None).raw(rows).astype(int)
+    ids = OnnxRuntimeEvaluator(to_model(leaf_id_ensemble(ensemble)), None).raw(rows).astype(int)
     expect = []
     for r in ids:
         acc = 0.0
@@ -470,7 +469,7 @@ def test_single_leaf_trees_and_empty_category_sets():
              Tree(0, [0, LEAF, LEAF], [0.0, 0.0, 0.0], [1, -1, -1], [2, -1, -1], [True, False, False],
                   [0.0, 1.0, 2.0], [(), None, None])]
     e = Ensemble(task="regression", features=feats, trees=trees, base_values=[0.5], output_names=["y"]).check()
-    model = onnx_writer.to_model(e)
+    model = to_model(e)
     X = np.array([[0.0], [1.0], [np.nan], [7.0]])
     want = np.array([[0.5 + 0.25 + 2.0], [0.5 + 0.25 + 2.0], [0.5 + 0.25 + 1.0], [0.5 + 0.25 + 1.0]])
     for ev in (OnnxRuntimeEvaluator(model, e), OnnxReferenceEvaluator(model, e)):
@@ -491,7 +490,7 @@ def test_trees_and_forests_bit_identical(name):
     onnxruntime and onnx.reference, labels identical, and JSON -> ONNX -> hub -> JSON
     gives the same bytes."""
     case, ensemble, data = zoo.exported(name)
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     rows = probe_rows(case, ensemble, limit=1500)
     source = SourceModel(case.model, ensemble)
     ev = OnnxRuntimeEvaluator(model, ensemble)
@@ -553,7 +552,7 @@ def test_every_zoo_case_exact_graph(name, record_property):
     decision_function within the same absolute error), labels identical. Pipelines: the
     graph is fed the features computed by the pipeline's own preprocessing steps."""
     case, ensemble, _ = zoo.exported(name)
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     onnx.checker.check_model(model, full_check=True)
     read = read_onnx(model)
     rows = probe_rows(case, ensemble, limit=1500)
@@ -581,11 +580,11 @@ def test_new_kinds_round_trip(name):
     values, features (names, kinds, categories), post-transform and classes; the raw
     fields and every feature's source are dropped (the graph holds the tree part only),
     and the provenance says so."""
-    from boxwood.readers.json_artefact import read_file
+    from boxwood.formats.json.reader import read_file
 
     _, ensemble, data = zoo.exported(name)
     start = read_file(data)
-    model = onnx_writer.to_model(start)
+    model = to_model(start)
     back = read_onnx(model)
     assert back.trees == ensemble.trees and back.base_values == ensemble.base_values
     assert back.post_transform == ensemble.post_transform

@@ -21,16 +21,15 @@ onnx = pytest.importorskip("onnx")
 pytest.importorskip("onnxruntime")
 
 from boxwood.cli import main  # noqa: E402
-from boxwood.readers.onnx_reader import (  # noqa: E402
-    OnnxReadError,
-    OnnxReferenceEvaluator,
-    OnnxRuntimeEvaluator,
-    read_onnx,
-    rows_to_matrix,
-)
-from boxwood.source import SourceModel  # noqa: E402
-from boxwood.writers import onnx_legacy, onnx_writer  # noqa: E402
-from boxwood.writers.json_artefact import to_bytes  # noqa: E402
+from boxwood.formats.onnx.evaluators import OnnxReferenceEvaluator, OnnxRuntimeEvaluator, rows_to_matrix  # noqa: E402
+from boxwood.formats.onnx.parse import OnnxReadError  # noqa: E402
+from boxwood.formats.onnx.reader import read_onnx  # noqa: E402
+from boxwood.sources.model import SourceModel  # noqa: E402
+from boxwood.formats.onnx import legacy as onnx_legacy  # noqa: E402
+from boxwood.formats.onnx import writer as onnx_writer  # noqa: E402
+from boxwood.formats.onnx.exact import to_model  # noqa: E402
+from boxwood.numerics import float32_floor  # noqa: E402
+from boxwood.formats.json.writer import to_bytes  # noqa: E402
 
 import zoo  # noqa: E402
 from test_conformance import probe_rows  # noqa: E402
@@ -79,9 +78,9 @@ def test_reads_skl2onnx_output(name, record_property):
     X32 = np.asarray(case.X, dtype=np.float32)
     rows = [[float(v) for v in r] for r in X32]
     bound = np.asarray(onnx_legacy.raw_error_bound(ours))
-    from boxwood.onnx_check import hub_scores
+    from boxwood.formats.json.device import hub_outputs
 
-    hub_raw, _ = hub_scores(theirs, rows)
+    hub_raw = hub_outputs(theirs, rows).raw
     want = SourceModel(case.model, ours).raw(rows)
     assert np.all(np.abs(hub_raw - want).max(axis=0) <= bound)
     ev = OnnxRuntimeEvaluator(model, theirs)
@@ -95,13 +94,13 @@ def test_reads_skl2onnx_output(name, record_property):
     # and leaf by leaf against scikit-learn's apply() on float32 threshold probes.
     pairs = [(a.threshold[i], b.threshold[i]) for a, b in zip(ours.trees, theirs.trees)
              for i in range(a.n_nodes) if a.feature[i] >= 0]
-    assert all(s == onnx_legacy.float32_threshold(t) for t, s in pairs)
+    assert all(s == float32_floor(t) for t, s in pairs)
     nearest_differs = sum(1 for t, s in pairs if float(np.float32(t)) != s)
     probes = []
     for t in ours.trees[:12]:
         for i in range(t.n_nodes):
             if t.feature[i] >= 0:
-                for v in (np.float32(t.threshold[i]), onnx_legacy.float32_threshold(t.threshold[i])):
+                for v in (np.float32(t.threshold[i]), float32_floor(t.threshold[i])):
                     row = list(rows[len(probes) % len(rows)])
                     row[t.feature[i]] = float(v)
                     probes.append(row)
@@ -134,7 +133,7 @@ def test_records_where_skl2onnx_fails(name, record_property):
         kind.__name__, message[:160].replace("\n", " "), err.value.__cause__ or err.value.__context__))
     # ... while boxwood's own graph for the same model is exact.
     rows = case.rows[:200]
-    got = OnnxRuntimeEvaluator(onnx_writer.to_model(ensemble), ensemble).raw(rows)
+    got = OnnxRuntimeEvaluator(to_model(ensemble), ensemble).raw(rows)
     assert first_mismatch(got, SourceModel(case.model, ensemble).raw(rows)) is None
 
 
@@ -160,7 +159,7 @@ def test_records_reference_evaluator_disagreement_on_skl2onnx_binary_classifier(
     assert gap > 0.1
     record_property("onnx_reference_probability_gap", gap)
     # boxwood's graph for the same model: both evaluators agree with scikit-learn.
-    mine = onnx_writer.to_model(ours)
+    mine = to_model(ours)
     rows = case.rows[:200]
     for ev in (OnnxRuntimeEvaluator(mine, ours), OnnxReferenceEvaluator(mine, ours)):
         assert np.abs(ev.transformed(rows) - SourceModel(case.model, ours).transformed(rows)).max() < 1e-15
@@ -211,7 +210,7 @@ def test_every_comparison_mode_reads_exactly(name):
     gets back the very trees, and onnxruntime on the rewritten graph still gives
     scikit-learn's raw scores bit for bit (threshold, float-step and NaN probes)."""
     case, ensemble, _ = zoo.exported(name)
-    rewritten = _rewrite_modes(onnx_writer.to_model(ensemble))
+    rewritten = _rewrite_modes(to_model(ensemble))
     modes = set(onnx.numpy_helper.to_array(onnx.helper.get_attribute_value(
         [a for a in [n for n in rewritten.graph.node if n.op_type == "TreeEnsemble"][0].attribute
          if a.name == "nodes_modes"][0])).tolist())
@@ -259,14 +258,14 @@ def test_unsupported_nodes_are_named():
     _, ensemble, _ = zoo.exported("gbr_squared_error")
     T = onnx.TensorProto
     # an op after the trees that boxwood cannot state
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     model.graph.node.append(onnx.helper.make_node("Tanh", ["raw_score"], ["squashed"], name="squash"))
     model.graph.output.append(onnx.helper.make_tensor_value_info("squashed", T.DOUBLE, ["N", 1]))
     with pytest.raises(OnnxReadError) as err:
         read_onnx(model)
     assert "'squash' (Tanh)" in str(err.value) and "after the tree operator" in str(err.value)
     # an op between the input and the trees
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     first = model.graph.node[0]
     first.input[0] = "scaled"
     model.graph.initializer.append(onnx.numpy_helper.from_array(np.array(2.0), "two_"))
@@ -275,7 +274,7 @@ def test_unsupported_nodes_are_named():
         read_onnx(model)
     assert "'scale_input' (Mul)" in str(err.value) and "between the graph input" in str(err.value)
     # two tree operators
-    model = onnx_writer.to_model(ensemble)
+    model = to_model(ensemble)
     tree = [n for n in model.graph.node if n.op_type == "TreeEnsemble"][0]
     twin = onnx.helper.make_node("Identity", ["x"], ["y"])
     twin.CopyFrom(tree)
@@ -382,9 +381,9 @@ def test_json_onnx_roundtrip_through_legacy_keeps_decisions():
     assert to_bytes(dataclasses.replace(back, reference=None, provenance={}))  # a valid artefact
     rows = float32_rows(case, ensemble)
     X = rows_to_matrix(ensemble, rows)
-    from boxwood.onnx_check import hub_scores
+    from boxwood.formats.json.device import hub_outputs
 
-    raw, _ = hub_scores(back, rows)
+    raw = hub_outputs(back, rows).raw
     want = SourceModel(case.model, ensemble).raw(rows)
     assert np.all(np.abs(raw - want).max(axis=0) <= np.asarray(onnx_legacy.raw_error_bound(ensemble)))
     assert X.shape[0] == len(rows)

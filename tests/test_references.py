@@ -167,7 +167,7 @@ def test_isolation_forest_average_path_length_by_hand():
     assert abs(per_tree - c_exact) <= 2.0 * (1.0 / (2 * (n - 1)))
     # and the score formula s = 2 ** (-E[h(x)] / c(n)) (eq. 2) on one row, by hand
     import boxwood_runtime
-    from boxwood.writers.json_artefact import to_bytes
+    from boxwood.formats.json.writer import to_bytes
 
     device = boxwood_runtime.load(to_bytes(ensemble))
     row = case.rows[0]

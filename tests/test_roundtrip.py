@@ -9,8 +9,8 @@ import struct
 import pytest
 
 from boxwood.export import build
-from boxwood.readers.json_artefact import from_document, read_file
-from boxwood.writers.json_artefact import to_bytes
+from boxwood.formats.json.reader import from_document, read_file
+from boxwood.formats.json.writer import to_bytes
 
 import zoo
 
@@ -52,7 +52,7 @@ def test_infinite_thresholds_survive():
     from sklearn.ensemble import HistGradientBoostingRegressor
 
     import boxwood_runtime
-    from boxwood.source import SourceModel
+    from boxwood.sources.model import SourceModel
 
     X, y = load_diabetes(return_X_y=True)  # Efron et al. 2004, shipped with scikit-learn
     X = X.copy()

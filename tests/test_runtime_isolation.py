@@ -77,7 +77,7 @@ def test_core_scores_under_isolated_python(tmp_path):
                          capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stderr
     got = json.loads(out.stdout)
-    from boxwood.source import SourceModel
+    from boxwood.sources.model import SourceModel
 
     want = SourceModel(case.model, ensemble).raw(rows)
     assert [list(g) for g in got] == want.tolist()

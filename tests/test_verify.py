@@ -34,9 +34,10 @@ import zoo
 from boxwood.cli import main
 from boxwood.ir import LEAF, Ensemble, Feature, Tree
 from boxwood.schema import load_schema, validate
-from boxwood.source import SourceModel
-from boxwood.verify import (ARTEFACT_KINDS, Artefact, Evaluator, Outputs, assert_equivalent, floats,
-                            register_artefact_kind, verify)
+from boxwood.sources.model import SourceModel
+from boxwood import formats
+from boxwood import numerics as floats
+from boxwood.verify import Artefact, Evaluator, Outputs, assert_equivalent, verify
 from boxwood.verify.structure import Side, prove
 from boxwood_runtime import scorer
 from test_schema import undescribed
@@ -126,7 +127,7 @@ def test_probes_reach_every_split_of_a_small_model(tmp_path):
     the node (checked by walking the rows down scikit-learn's own fitted trees)."""
     case, _, data = zoo.exported("gbr_squared_error")
     from boxwood.verify import probes
-    from boxwood.readers import read_model
+    from boxwood.sources import read_model
 
     ens = read_model(case.model)
     rows = probes.generate(ens, [], [], budget=probes.DEFAULT_PROBE_ROWS).rows
@@ -534,7 +535,7 @@ class _FsumEvaluator(Evaluator):
 
 
 def test_registered_artefact_kind_with_float32_inputs_and_another_summation(tmp_path):
-    from boxwood.readers.json_artefact import from_document
+    from boxwood.formats.json.reader import from_document
 
     case, _, data = zoo.exported("hgbr_squared_error")
     path = tmp_path / "m.fsum"
@@ -544,12 +545,12 @@ def test_registered_artefact_kind_with_float32_inputs_and_another_summation(tmp_
         e = from_document(boxwood_runtime.load(str(p)).doc)
         return Artefact(str(p), e, [_FsumEvaluator(e)], format="test kind")
 
-    register_artefact_kind(".fsum", load)
+    formats.register(formats.Format(name="fsum", extensions=(".fsum",), title="test format", open=load))
     try:
         strict = verify(case.model, str(path), probes=800)
         tolerant = verify(case.model, str(path), probes=800, abs_tol=1e-9)
     finally:
-        ARTEFACT_KINDS.pop(".fsum")
+        formats.unregister("fsum")
     ev = evaluator(strict, "fsum float32")
     assert ev.properties["input_precision"] == "float32"
     assert any("float32 values" in d for d in ev.structure["domain"])
@@ -564,8 +565,11 @@ def test_registered_artefact_kind_with_float32_inputs_and_another_summation(tmp_
 def test_unknown_artefact_kind_is_bad_usage(tmp_path):
     case = zoo.fitted("gbr_squared_error")
     p = tmp_path / "m.xyz"
-    p.write_text("{}")
-    with pytest.raises(ValueError, match="no artefact kind"):
+    p.write_text("model,weights\n1,2\n")
+    with pytest.raises(ValueError, match="not an artefact of any known format"):
+        verify(case.model, str(p))
+    p.write_text("{}")  # an unknown extension, but JSON content: opened as a JSON artefact, and refused
+    with pytest.raises(ValueError, match="boxwood_digest"):
         verify(case.model, str(p))
 
 

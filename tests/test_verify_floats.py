@@ -1,4 +1,4 @@
-"""The floating-point facts the verifier's proofs rest on (boxwood.verify.floats, .bounds).
+"""The floating-point facts the verifier's proofs rest on (boxwood.numerics, boxwood.verify.bounds).
 
 Outside references:
 - numpy's float64 -> float32 cast and ``numpy.nextafter``: IEEE 754-2019 conversion with
@@ -20,8 +20,9 @@ from fractions import Fraction
 import numpy as np
 import pytest
 
-from boxwood.verify import bounds, floats
-from boxwood.verify.floats import F32_MAX, Domain
+from boxwood import numerics as floats
+from boxwood.numerics import F32_MAX, Domain
+from boxwood.verify import bounds
 
 
 def f32(x: float) -> float:

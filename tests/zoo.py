@@ -280,7 +280,7 @@ def fitted(name: str) -> Case:
 def exported(name: str):
     """(case, ensemble, artefact bytes) for ``name`` (cached: do not mutate them)."""
     from boxwood.export import build
-    from boxwood.writers.json_artefact import to_bytes
+    from boxwood.formats.json.writer import to_bytes
 
     case = fitted(name)
     ensemble = build(case.model)

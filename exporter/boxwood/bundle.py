@@ -64,31 +64,28 @@ def _sha256(path: Path) -> str:
 
 def artefact_from(source: Union[str, Path], reference_rows: int = 6) -> bytes:
     """The artefact bytes for ``source``: a boxwood JSON artefact (used as it is, after the
-    device loader verified it), or a joblib/pickle model file, exported here. Loading a
-    pickle runs code stored in it (see boxwood.export.PICKLE_WARNING)."""
+    device loader verified it), or anything :func:`boxwood.export.export` reads (a joblib or
+    pickle model file, whose loading runs code stored in it; an ONNX file, read as data),
+    exported here to a JSON artefact and checked."""
     import boxwood_runtime
 
+    from . import formats
+    from .export import export
+
     path = Path(source)
+    if path.is_dir():
+        raise BundleError("%s is a folder; give an artefact or a model file" % source)
     if not path.is_file():
         raise BundleError("%s not found (or not a file)" % source)
-    with path.open("rb") as fh:
-        head = fh.read(64)
-    if head.lstrip()[:1] == b"{":
+    if formats.registry.sniff(path) is formats.by_name("json"):
         data = path.read_bytes()
         boxwood_runtime.load(data)  # digest, structure, self-check: never bundle a bad artefact
         return data
-    from .export import build, load_model_file
-    from .writers.json_artefact import to_bytes
-
-    try:
-        model = load_model_file(path)
-    except (OSError, MemoryError):
-        raise
-    except Exception as exc:  # unpickling can raise anything; it is the user's file
-        raise BundleError("cannot load %s as a joblib or pickle file: %s: %s" % (source, type(exc).__name__, exc))
-    data = to_bytes(build(model, reference_rows=reference_rows))
-    boxwood_runtime.load(data)
-    return data
+    with tempfile.TemporaryDirectory() as tmp:
+        result = export(path, Path(tmp) / ARTEFACT, reference_rows=reference_rows)
+        if not result.ok:
+            raise BundleError("the exported artefact fails its self-check: %s" % result.check[1])
+        return (Path(tmp) / ARTEFACT).read_bytes()
 
 
 def footprint(data: bytes, measure: str = "auto", port: Optional[Union[str, Path]] = None) -> Dict[str, Any]:

@@ -190,9 +190,8 @@ def _export_compare_stream(gen, step, echo, out, frame, jobs):
     from boxwood_runtime.scorer import SELF_CHECK_ULPS, ulp_distance
     from boxwood_runtime.stream import score_stream
 
-    from .export import build
-    from .source import SourceModel
-    from .writers import json_artefact
+    from .export import export
+    from .sources.model import SourceModel
 
     # -- export -------------------------------------------------------------------
     step("Export each model to a boxwood artefact")
@@ -200,8 +199,9 @@ def _export_compare_stream(gen, step, echo, out, frame, jobs):
     ensembles = {}
     for name, model, _, _ in jobs:
         path = out / (name + ".json")
-        ensemble = ensembles[name] = build(model)
-        size = json_artefact.write(ensemble, path)
+        result = export(model, path)  # the library's export pipeline: read, write, check
+        ensemble = ensembles[name] = result.ensemble
+        size = result.bytes
         paths[name] = path
         echo("   %-28s %d trees, %d nodes, %d bytes -> %s" % (
             name, len(ensemble.trees), ensemble.n_nodes, size, path.name))

@@ -114,9 +114,6 @@ class Tree:
                 stack.append((self.right[node], d + 1))
         return best
 
-    def n_leaves(self) -> int:
-        return sum(1 for f in self.feature if f == LEAF)
-
 
 @dataclass
 class Reference:

@@ -153,7 +153,7 @@ class BatchModel:
         the same as the pure-Python scorer's. Raises RecordError naming the row and
         field of the first bad value.
         """
-        if isinstance(records, np.ndarray) and self.model._sources is not None:
+        if isinstance(records, np.ndarray) and self.model.preprocesses:
             raise RecordError(None, None, "this artefact carries preprocessing (raw fields %s); pass a list of "
                               "records, not a feature matrix" % ", ".join(self.model.input_names))
         if isinstance(records, np.ndarray) and records.dtype.kind in "fiu":
@@ -299,6 +299,19 @@ class BatchModel:
         if m.post_transform == "isolation":
             return transform("isolation", raw, m.post_transform_params) - m.post_transform_params["offset"]
         return raw
+
+    def exact_values(self, raw):
+        """The values a device must reproduce bit for bit, as the scorer's ``exact_values``:
+        the raw scores, except AdaBoost's decision values."""
+        m = self.model
+        if m.post_transform == "samme":
+            return samme_decision(raw, m.post_transform_params["weight_total"])
+        return raw
+
+    def transform_raw(self, raw):
+        """The post-transformed outputs for raw scores (n, n_outputs), as the scorer's ``transform_raw``."""
+        m = self.model
+        return transform(m.post_transform, raw, m.post_transform_params)
 
     def decision_function(self, X):
         """Decision values (raw scores for boosted models): shape (n,) or (n, K)."""

@@ -459,6 +459,11 @@ class Model:
         self.n_features = len(self.feature_names)
         self._read_preprocessing(inputs, feats, limits)
 
+    @property
+    def preprocesses(self):
+        """True when records carry raw fields that preprocessing steps turn into the features."""
+        return self._sources is not None
+
     def _read_preprocessing(self, inputs, feats, limits):
         """Raw record fields and each feature's source steps (a scikit-learn Pipeline's
         preprocessing), or, without "fields", records that hold the features themselves.

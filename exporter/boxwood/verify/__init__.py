@@ -10,8 +10,9 @@ Command line: ``boxwood verify MODEL ARTEFACT... [--data FILE] [--abs-tol A] [--
 
 Architecture (each module has one job):
 
-* :mod:`.floats` - exact floating-point facts: the float64 end ``B`` of a float32-compared
-  split's left set, next representable values, input domains, ulp distances, gamma_n.
+* :mod:`boxwood.numerics` (shared with the float32 ONNX writer) - exact floating-point
+  facts: the float64 end ``B`` of a float32-compared split's left set, next
+  representable values, input domains, ulp distances, gamma_n.
 * :mod:`.structure` - the structural proof: the source's and the artefact's
   :class:`~boxwood.ir.Ensemble` paired tree by tree (aligned on identical trees, so a
   dropped tree is found where it was dropped) and node by node; every difference with its
@@ -21,28 +22,26 @@ Architecture (each module has one job):
 * :mod:`.probes` - rows for the empirical check: the user's data, then specials (NaN,
   categories, unseen categories, extremes), split probes that reach each node with values
   on both sides of its boundary, random rows; bounded by ``probes``.
-* :mod:`.evaluators` - the evaluator interface, the source model as an evaluator, and the
-  registry of artefact kinds (extension -> loader). ".json" gives the device scorer and
-  the numpy batch evaluator.
 * :mod:`.empirical` - per output: max abs / rel error, max ulps, rows over tolerance,
   label flips and raw-score crossings.
+* :mod:`.checks` - one function per check (self-check, structure, bounds, empirical,
+  decisions, bound holds) and the per-evaluator report.
 * :mod:`.report` - :class:`VerifyResult` and its terminal summary, JSON report
   (schemas/verify-report.schema.json) and JUnit XML.
-* :mod:`.core` - ``verify`` and ``assert_equivalent``.
+* :mod:`.core` - ``verify`` and ``assert_equivalent``: load, open, make rows, run.
 
-Adding an artefact kind (e.g. ONNX): write ``load(path) -> Artefact(path, ensemble,
-evaluators, ...)`` where ``ensemble`` is the artefact read back into the hub and each
-evaluator follows the contract in :mod:`.evaluators` (``name``, ``evaluate(rows)``,
-``input_precision``, ``compare_precision``, ``summation_order``, ``summation_precision``),
-then ``register_artefact_kind(".onnx", load)``. The structural proof and the bound then take
-the evaluator's precisions and summation into account with no other change.
+Artefacts are opened through the format registry (:mod:`boxwood.formats`); evaluators
+follow the contract in :mod:`boxwood.contract`; the source model is
+:class:`boxwood.sources.model.SourceEvaluator`. A new format registered with
+``boxwood.formats.register(Format(..., open=...))`` is verified with no change here: the
+structural proof and the bound take each evaluator's precisions and summation into account.
 """
+from ..contract import Evaluator, Outputs
+from ..formats import Artefact, open_artefact
+from ..sources.model import SourceEvaluator
 from .core import assert_equivalent, verify
-from .evaluators import (ARTEFACT_KINDS, Artefact, BatchEvaluator, DeviceEvaluator, Evaluator, Outputs,
-                         SourceEvaluator, open_artefact, register_artefact_kind)
 from .probes import DEFAULT_PROBE_ROWS
 from .report import Check, VerifyResult
 
 __all__ = ["verify", "assert_equivalent", "VerifyResult", "Check", "Evaluator", "Outputs", "Artefact",
-           "ARTEFACT_KINDS", "register_artefact_kind", "open_artefact", "SourceEvaluator", "DeviceEvaluator",
-           "BatchEvaluator", "DEFAULT_PROBE_ROWS"]
+           "open_artefact", "SourceEvaluator", "DEFAULT_PROBE_ROWS"]

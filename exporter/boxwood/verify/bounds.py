@@ -44,7 +44,7 @@ each correctly rounded: ``fl(a op b) = (a op b)(1 + d)``, ``|d| <= u``):
 
 Relative bounds need normal results: where an output may underflow (exp or logistic of a
 raw score below -700, a softmax spread above 700) only the absolute bound is given.
-All arithmetic on bounds rounds upwards (``floats.up`` after each operation).
+All arithmetic on bounds rounds upwards (``numerics.up`` after each operation).
 """
 from __future__ import annotations
 
@@ -53,16 +53,16 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import Any, Dict, List, Optional, Tuple
 
-from . import floats
-from .floats import INF, exp_up, round_up, up
+from .. import numerics
+from ..numerics import INF, exp_up, round_up, up
 from .structure import OutputBound
 
 ASSUMED_EXP_ULPS = 1
-EPS = ASSUMED_EXP_ULPS * floats.ULP_RELATIVE
-U = floats.UNIT_ROUNDOFF["float64"]
+EPS = ASSUMED_EXP_ULPS * numerics.ULP_RELATIVE
+U = numerics.UNIT_ROUNDOFF["float64"]
 _EPS = Fraction(EPS)
 _U = Fraction(U)
-LN2_UP = floats.next_up(math.log(2.0))  # an upper bound of ln 2 (math.log is within 1 ulp)
+LN2_UP = numerics.next_up(math.log(2.0))  # an upper bound of ln 2 (math.log is within 1 ulp)
 # Outputs below e**-700 may be subnormal: relative error bounds do not hold there.
 UNDERFLOW_RAW = 700.0
 # Slack added to absolute bounds of outputs that may be subnormal (a few subnormal steps).
@@ -80,9 +80,9 @@ def expm1_up(x: float) -> Fraction:
     try:
         v = math.expm1(x)
     except OverflowError:
-        return Fraction(floats.F64_MAX) * 2
+        return Fraction(numerics.F64_MAX) * 2
     if v == INF:
-        return Fraction(floats.F64_MAX) * 2
+        return Fraction(numerics.F64_MAX) * 2
     return Fraction(up(up(v * (1.0 + 2.0 ** -49))))
 
 
@@ -90,7 +90,7 @@ def _relative(grow: Fraction, eta_a: Fraction, eta_s: Fraction) -> Fraction:
     """Upper bound of |q (1 + d_a)/(1 + d_s) - 1| for q in [1/(1+grow), 1+grow], |d_a| <= eta_a,
     |d_s| <= eta_s (the upper deviation dominates: x - 1 >= 1 - 1/x for x >= 1)."""
     if eta_s >= 1:
-        return Fraction(floats.F64_MAX) * 2
+        return Fraction(numerics.F64_MAX) * 2
     return (1 + grow) * (1 + eta_a) / (1 - eta_s) - 1
 
 
@@ -101,7 +101,7 @@ def _logistic_eta() -> Fraction:
 
 
 def _softmax_eta(k: int, spread: float) -> Fraction:
-    g = floats.gamma(max(k - 1, 1), U)
+    g = numerics.gamma(max(k - 1, 1), U)
     num = (1 + _EPS) * (1 + _U) * (1 + expm1_up(up(2 * U * spread)))
     return num / ((1 - _EPS) * (1 - g)) - 1  # the lower deviation 1 - 1/(1 + this) is smaller
 
@@ -116,7 +116,7 @@ def identity_rel(bound: float, rng: Tuple[float, float]) -> float:
 
 
 def _fin(x: float) -> Fraction:
-    return Fraction(x) if math.isfinite(x) else Fraction(floats.F64_MAX) * 2
+    return Fraction(x) if math.isfinite(x) else Fraction(numerics.F64_MAX) * 2
 
 
 @dataclass
@@ -163,7 +163,7 @@ def value_bounds(ensemble: Any, outputs: List[OutputBound], artefact_params: Opt
     """Bounds for the values the verifier compares, from the raw bounds ``outputs``.
 
     Returns (exact values, transformed outputs, derivation lines). The exact values are
-    what a device must reproduce bit for bit (``boxwood.source.SourceModel.raw``): the
+    what a device must reproduce bit for bit (``boxwood.sources.model.SourceModel.raw``): the
     raw scores, except AdaBoost's decision values (``raw / weight_total``, for two
     classes ``-d0 + d1``). The transformed outputs are ``SourceModel.transformed``: the
     prediction, the class probabilities (the positive class only for a binary model with
@@ -332,7 +332,7 @@ def default_tolerances(post: str, n_outputs: int):
         tol["transformed"] = (0.0, 0.0, "identity post-transform: the output is the raw score, bit-identical "
                                         "expected")
     else:
-        floor = TRANSFORMED_FLOOR_ULPS * floats.ULP_RELATIVE
+        floor = TRANSFORMED_FLOOR_ULPS * numerics.ULP_RELATIVE
         allow = implementation_allowance(post, n_outputs)
         rel = max(floor, allow)
         why = ("%s outputs: relative %.3g = max(%d ulps as the device self-check allows "

@@ -6,7 +6,7 @@ from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
-from . import floats
+from .. import numerics
 
 EXAMPLES = 5  # rows listed per metric in reports
 
@@ -52,7 +52,7 @@ def measure(source: np.ndarray, got: np.ndarray, abs_tol: float, rel_tol: float)
         rel = np.where(np.isnan(rel), np.inf, rel)
         allowed = np.maximum(abs_tol, rel_tol * np.abs(s))
     over = ~equal & ~(diff <= allowed)
-    ulps = floats.ulp_distance(a, s)
+    ulps = numerics.ulp_distance(a, s)
     worst = int(np.argmax(diff)) if diff.max() > 0 else None
     return Metrics(
         rows=n, max_abs=float(diff.max()), max_rel=float(rel.max()), max_ulp=int(ulps.max()),

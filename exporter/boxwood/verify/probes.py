@@ -15,7 +15,7 @@ Generated probes, in priority order, within a row budget (``DEFAULT_PROBE_ROWS``
    that node (its ancestors' conditions hold) with the split's feature set to the values
    on both sides of the boundary at the precision that matters: the threshold t and its
    float64 neighbours; for float32 comparisons also B (the largest float64 that goes
-   left, :func:`floats.float32_left_boundary`), the float64 after B, the float32 values
+   left, :func:`numerics.float32_left_boundary`), the float64 after B, the float32 values
    around t; and NaN where missing values are routed. Distinct boundaries come first,
    then the remaining nodes, each group in a seeded random order;
 3. random rows, uniform in the observed range of each feature (the data's, widened to the
@@ -30,8 +30,8 @@ from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
 import numpy as np
 
 from ..ir import LEAF, Ensemble, Tree
-from . import floats
-from .floats import Domain, numeric_domain
+from .. import numerics
+from ..numerics import Domain, numeric_domain
 
 DEFAULT_PROBE_ROWS = 4000
 UNSEEN_STRING = "\u2205boxwood-unseen-category"
@@ -85,11 +85,11 @@ def read_data(data: Any, source: Ensemble) -> Rows:
     missing-value tokens, numbers, category values; an unseen category is kept and routed
     as missing). Raises ValueError naming the row and field of the first row the source
     model cannot score (bad usage: exit code 2)."""
-    from boxwood_runtime import scorer
+    from boxwood_runtime import RecordError
 
-    from ..writers.json_artefact import to_document
+    from ..formats.json.device import device_model
 
-    model = scorer.Model(to_document(source), scorer.DEFAULT_LIMITS, unknown_category="as_missing")
+    model = device_model(source)
     out = Rows()
     if isinstance(data, (str, Path)):
         records = _file_records(Path(data), model)
@@ -104,7 +104,7 @@ def read_data(data: Any, source: Ensemble) -> Rows:
             else:
                 row = list(record)
                 model.prepare(row, n)
-        except scorer.RecordError as exc:
+        except RecordError as exc:
             raise ValueError("%s: %s" % (where, exc.reason if exc.field is None else
                                          "field %r: %s" % (exc.field, exc.reason)))
         except OverflowError as exc:
@@ -210,8 +210,8 @@ class _Plan:
                 self.lo[j], self.hi[j] = self.hi[j], self.lo[j]
             d = self.domain[j]
             if d is not None:
-                self.lo[j] = max(self.lo[j], d.lo if math.isfinite(d.lo) else -floats.F64_MAX)
-                self.hi[j] = min(self.hi[j], d.hi if math.isfinite(d.hi) else floats.F64_MAX)
+                self.lo[j] = max(self.lo[j], d.lo if math.isfinite(d.lo) else -numerics.F64_MAX)
+                self.hi[j] = min(self.hi[j], d.hi if math.isfinite(d.hi) else numerics.F64_MAX)
 
     def categories(self, j: int) -> List[Any]:
         return list(self.features[j].categories)
@@ -238,7 +238,7 @@ class _Plan:
                 if not math.isfinite(v):
                     v = 0.0
                 if self.source.compare_precision == "float32" and rng.random() < 0.5:
-                    v = floats.round32(v)  # exact float32 values meet float32 thresholds more often
+                    v = numerics.round32(v)  # exact float32 values meet float32 thresholds more often
                 row.append(v)
         return row
 
@@ -255,7 +255,7 @@ def _node_constraints(tree: Tree, precision: str, plan: _Plan) -> Dict[int, Tupl
         if f == LEAF or f >= len(plan.features):
             continue
         if tree.left_categories[node] is None:
-            b = floats.left_boundary(tree.threshold[node], precision)
+            b = numerics.left_boundary(tree.threshold[node], precision)
             lo, hi = cons.get(f, (None, math.inf))
             left = dict(cons)
             left[f] = (lo, min(hi, b))
@@ -304,13 +304,13 @@ def _fit_row(base: Sequence[Any], cons: Dict[int, Any], plan: _Plan) -> Optional
 
 
 def _boundary_values(t: float, precision: str) -> List[Tuple[float, str]]:
-    vals = [(t, "t"), (floats.next_down(t), "t-1ulp"), (floats.next_up(t), "t+1ulp")]
+    vals = [(t, "t"), (numerics.next_down(t), "t-1ulp"), (numerics.next_up(t), "t+1ulp")]
     if precision == "float32":
-        b = floats.float32_left_boundary(t)
-        f = floats.float32_floor(t)
-        vals += [(b, "B (last float64 going left)"), (floats.next_up(b), "B+1ulp (first going right)"),
-                 (f, "float32 floor of t"), (floats.next32_above(f), "next float32"),
-                 (floats.next32_below(f), "previous float32")]
+        b = numerics.float32_left_boundary(t)
+        f = numerics.float32_floor(t)
+        vals += [(b, "B (last float64 going left)"), (numerics.next_up(b), "B+1ulp (first going right)"),
+                 (f, "float32 floor of t"), (numerics.next32_above(f), "next float32"),
+                 (numerics.next32_below(f), "previous float32")]
     return vals
 
 
@@ -351,10 +351,10 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
                 specials.append((j, c, "unseen category %r" % (c,)))
             continue
         d = plan.domain[j]
-        values = [d.lo, d.hi, -floats.F64_MAX, floats.F64_MAX, 0.0, -0.0, 5e-324, -5e-324]
+        values = [d.lo, d.hi, -numerics.F64_MAX, numerics.F64_MAX, 0.0, -0.0, 5e-324, -5e-324]
         if plan.float32:
-            values += [floats.F32_MAX, -floats.F32_MAX, floats.float32_input_limit(), -floats.float32_input_limit(),
-                       2.0 ** -149, -2.0 ** -149, 2.0 ** -150, floats.next_up(2.0 ** -150)]
+            values += [numerics.F32_MAX, -numerics.F32_MAX, numerics.float32_input_limit(), -numerics.float32_input_limit(),
+                       2.0 ** -149, -2.0 ** -149, 2.0 ** -150, numerics.next_up(2.0 ** -150)]
         seen = set()
         for v in values:
             if d.contains(v) and v.hex() not in seen:
@@ -376,7 +376,7 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
                 if f == LEAF or f >= len(plan.features):
                     continue
                 if t.left_categories[node] is None:
-                    key = (f, floats.left_boundary(t.threshold[node], precision))
+                    key = (f, numerics.left_boundary(t.threshold[node], precision))
                 else:
                     key = (f, t.left_categories[node], t.missing_left[node])
                 target = (s, ti, node)
@@ -436,7 +436,7 @@ def round_rows_float32(rows: Sequence[Sequence[Any]], source: Ensemble) -> Tuple
         new = []
         for j, v in enumerate(r):
             if numeric[j] and isinstance(v, float):
-                w = floats.round32(v)
+                w = numerics.round32(v)
                 if math.isinf(w) and not math.isinf(v):
                     break
                 new.append(w)

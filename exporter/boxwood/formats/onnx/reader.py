@@ -22,254 +22,20 @@ Tree node numbering in the hub is canonical: depth first, the branch taken when
 read back to the very same trees (tests/test_onnx.py checks JSON -> ONNX -> hub ->
 JSON).
 
-This module also holds the ONNX evaluators used by tests and by the verifier:
-:class:`OnnxRuntimeEvaluator` (single-threaded, so sums are added in tree order) and
-:class:`OnnxReferenceEvaluator` (onnx.reference).
+Loading and graph walking are in :mod:`.parse`; the evaluators that run a file are in
+:mod:`.evaluators`.
 """
 from __future__ import annotations
 
-import json
 import math
 from pathlib import Path
 from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
-from ..ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
-from .common import UnsupportedModel
-
-TREE_OPS = ("TreeEnsemble", "TreeEnsembleRegressor", "TreeEnsembleClassifier")
-ML_DOMAIN = "ai.onnx.ml"
-# Ops allowed after the tree operator (they shape outputs or apply the post-transform).
-OUTPUT_OPS = ("Identity", "Add", "Sub", "Mul", "Div", "Neg", "Sigmoid", "Softmax", "Exp", "Pow", "Concat", "Greater",
-              "GreaterOrEqual", "Cast", "Reshape", "Squeeze", "Unsqueeze", "Flatten", "ArgMax", "Gather",
-              "ZipMap", "Constant")
-# Ops allowed before it: the value path, and the mask that marks unknown category codes.
-INPUT_PATH_OPS = ("Cast", "Identity", "Add", "Where")
-MASK_OPS = ("GreaterOrEqual", "LessOrEqual", "Floor", "Equal", "Or", "And", "Not", "IsNaN", "Greater",
-            "Less", "Constant", "Cast", "Identity")
-MAX_BYTES = 1 << 30
-META_PREFIX = "boxwood."
-
-
-class OnnxReadError(UnsupportedModel):
-    """The file is not an ONNX model boxwood can read; the message names the node."""
-
-
-# ----------------------------------------------------------------------------- loading
-def _onnx():
-    import onnx
-
-    return onnx
-
-
-def looks_like_onnx(path: Union[str, Path]) -> bool:
-    """True for a ``.onnx`` file, or a file whose bytes parse as an ONNX model with a graph.
-
-    Pickle and joblib files start with 0x80 or a compression header; an ONNX model
-    starts with field 1 (``ir_version``, tag byte 0x08)."""
-    path = Path(path)
-    if path.suffix.lower() == ".onnx":
-        return True
-    try:
-        with path.open("rb") as fh:
-            head = fh.read(1)
-    except OSError:
-        return False
-    if head != b"\x08":
-        return False
-    try:
-        model = _parse(path.read_bytes(), str(path))
-    except OnnxReadError:
-        return False
-    return len(model.graph.node) > 0
-
-
-def _parse(data: bytes, where: str) -> Any:
-    onnx = _onnx()
-    if len(data) > MAX_BYTES:
-        raise OnnxReadError("%s: larger than %d bytes" % (where, MAX_BYTES))
-    model = onnx.ModelProto()
-    try:
-        model.ParseFromString(data)
-    except Exception as exc:  # protobuf raises its own DecodeError
-        raise OnnxReadError("%s is not an ONNX model: the protobuf does not parse (%s: %s)"
-                            % (where, type(exc).__name__, exc))
-    if not model.HasField("graph") or not model.graph.node:
-        raise OnnxReadError("%s is not an ONNX model with a graph: it holds no graph nodes "
-                            "(truncated, damaged, or not an ONNX file)" % where)
-    return model
-
-
-def load(source: Any) -> Any:
-    """A checked ``onnx.ModelProto`` from a path, bytes or a ModelProto."""
-    onnx = _onnx()
-    if isinstance(source, onnx.ModelProto):
-        model, where = source, "the ONNX model"
-    elif isinstance(source, (bytes, bytearray)):
-        model, where = _parse(bytes(source), "the ONNX bytes"), "the ONNX bytes"
-    else:
-        where = str(source)
-        try:
-            with open(source, "rb") as fh:
-                data = fh.read(MAX_BYTES + 1)
-        except OSError as exc:
-            raise OnnxReadError("cannot read %s: %s" % (where, exc))
-        model = _parse(data, where)
-    try:
-        onnx.checker.check_model(model)
-    except Exception as exc:
-        raise OnnxReadError("%s fails onnx.checker: %s" % (where, str(exc).strip().splitlines()[0]))
-    return model
-
-
-# ----------------------------------------------------------------------------- graph helpers
-def _node_label(node: Any) -> str:
-    return "node %r (%s%s)" % (node.name or "<unnamed>", node.domain + "." if node.domain else "", node.op_type)
-
-
-class _Graph:
-    def __init__(self, model: Any):
-        onnx = _onnx()
-        self.onnx = onnx
-        g = model.graph
-        self.nodes = list(g.node)
-        self.consts: Dict[str, np.ndarray] = {t.name: onnx.numpy_helper.to_array(t) for t in g.initializer}
-        for n in self.nodes:
-            if n.op_type == "Constant" and n.domain in ("", "ai.onnx"):
-                attr = {a.name: a for a in n.attribute}
-                if "value" in attr:
-                    self.consts[n.output[0]] = onnx.numpy_helper.to_array(attr["value"].t)
-                elif "value_float" in attr:
-                    self.consts[n.output[0]] = np.asarray(attr["value_float"].f, dtype=np.float32)
-                elif "value_floats" in attr:
-                    self.consts[n.output[0]] = np.asarray(list(attr["value_floats"].floats), dtype=np.float32)
-                elif "value_int" in attr:
-                    self.consts[n.output[0]] = np.asarray(attr["value_int"].i, dtype=np.int64)
-                elif "value_ints" in attr:
-                    self.consts[n.output[0]] = np.asarray(list(attr["value_ints"].ints), dtype=np.int64)
-        self.producer = {o: n for n in self.nodes for o in n.output}
-        self.consumers: Dict[str, List[Any]] = {}
-        for n in self.nodes:
-            for i in n.input:
-                self.consumers.setdefault(i, []).append(n)
-        self.inputs = [i for i in g.input if i.name not in self.consts]
-        self.outputs = [o.name for o in g.output]
-
-    def attrs(self, node: Any) -> Dict[str, Any]:
-        return {a.name: self.onnx.helper.get_attribute_value(a) for a in node.attribute}
-
-    def const(self, name: str) -> Optional[np.ndarray]:
-        return self.consts.get(name)
-
-    def downstream(self, names: Sequence[str]) -> List[Any]:
-        seen, order, stack = set(), [], list(names)
-        while stack:
-            name = stack.pop()
-            for n in self.consumers.get(name, []):
-                if id(n) not in seen:
-                    seen.add(id(n))
-                    order.append(n)
-                    stack.extend(n.output)
-        return order
-
-    def upstream(self, names: Sequence[str]) -> List[Any]:
-        seen, order, stack = set(), [], list(names)
-        while stack:
-            name = stack.pop()
-            n = self.producer.get(name)
-            if n is not None and id(n) not in seen:
-                seen.add(id(n))
-                order.append(n)
-                stack.extend(n.input)
-        return order
-
-
-def _metadata(model: Any) -> Dict[str, Any]:
-    meta = {p.key: p.value for p in model.metadata_props}
-    out: Dict[str, Any] = {}
-    for key, value in meta.items():
-        if not key.startswith(META_PREFIX):
-            continue
-        try:
-            out[key] = json.loads(value)
-        except ValueError:
-            out[key] = value
-    return out
-
-
-# ----------------------------------------------------------------------------- input path
-class _InputPath:
-    """What happens to the values between the graph input and the tree operator."""
-
-    def __init__(self, graph: _Graph, tree: Any):
-        T = graph.onnx.TensorProto
-        if len(graph.inputs) != 1:
-            raise OnnxReadError("the graph has %d inputs (%s); boxwood reads graphs with one input [N, F]"
-                                % (len(graph.inputs), ", ".join(i.name for i in graph.inputs)))
-        gi = graph.inputs[0]
-        self.input_name = gi.name
-        self.input_type = gi.type.tensor_type.elem_type
-        if self.input_type not in (T.FLOAT, T.DOUBLE):
-            raise OnnxReadError("the graph input %r is of element type %s; boxwood reads float or double inputs"
-                                % (gi.name, T.DataType.Name(self.input_type)))
-        dims = gi.type.tensor_type.shape.dim
-        self.n_features = dims[1].dim_value if len(dims) == 2 and dims[1].HasField("dim_value") else None
-        self.float32 = self.input_type == T.FLOAT
-        self.offsets: Optional[np.ndarray] = None
-        self.sanitized = False
-        self.path_nodes: List[Any] = []
-        name = tree.input[0]
-        while name != self.input_name:
-            node = graph.producer.get(name)
-            if node is None:
-                raise OnnxReadError("the tree operator's input %r does not come from the graph input %r"
-                                    % (name, self.input_name))
-            self.path_nodes.append(node)
-            if node.op_type not in INPUT_PATH_OPS or node.domain not in ("", "ai.onnx"):
-                raise OnnxReadError("%s between the graph input and the tree operator is not supported "
-                                    "(allowed there: %s)" % (_node_label(node), ", ".join(INPUT_PATH_OPS)))
-            if node.op_type == "Cast":
-                to = graph.attrs(node).get("to")
-                if to == T.FLOAT:
-                    self.float32 = True
-                elif to != T.DOUBLE:
-                    raise OnnxReadError("%s casts to %s; only float and double are supported"
-                                        % (_node_label(node), T.DataType.Name(to)))
-                name = node.input[0]
-            elif node.op_type == "Identity":
-                name = node.input[0]
-            elif node.op_type == "Add":
-                a, b = node.input
-                if graph.const(b) is not None and graph.const(a) is None:
-                    value, name = graph.const(b), a
-                elif graph.const(a) is not None and graph.const(b) is None:
-                    value, name = graph.const(a), b
-                else:
-                    raise OnnxReadError("%s on the input path must add a constant" % _node_label(node))
-                if self.offsets is not None:
-                    raise OnnxReadError("%s: a second offset on the input path is not supported" % _node_label(node))
-                self.offsets = np.asarray(value, dtype=np.float64).ravel()
-            else:  # Where(condition, values, NaN): values failing the check become missing
-                cond, values, other = node.input
-                fill = graph.const(other)
-                if fill is None or fill.size != 1 or not np.isnan(np.asarray(fill, dtype=np.float64)).all():
-                    raise OnnxReadError("%s on the input path must replace values by a NaN constant"
-                                        % _node_label(node))
-                for m in graph.upstream([cond]):
-                    if m.op_type not in MASK_OPS and m not in self.path_nodes:
-                        if m.op_type in INPUT_PATH_OPS:
-                            continue
-                        raise OnnxReadError("%s in the input check is not supported" % _node_label(m))
-                self.sanitized = True
-                name = values
-
-    def offset(self, feature: int) -> float:
-        if self.offsets is None:
-            return 0.0
-        if self.offsets.size == 1:
-            return float(self.offsets[0])
-        return float(self.offsets[feature])
+from ...ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
+from .parse import (ML_DOMAIN, OUTPUT_OPS, TREE_OPS, Graph, InputPath, OnnxReadError, load, metadata, node_label,
+                    onnx_module)
 
 
 # ----------------------------------------------------------------------------- the tree operator
@@ -283,7 +49,7 @@ class _GenericTree:
 
 
 def _tensor_or_list(attrs: Dict[str, Any], name: str) -> Optional[np.ndarray]:
-    onnx = _onnx()
+    onnx = onnx_module()
     if name + "_as_tensor" in attrs:
         return np.asarray(onnx.numpy_helper.to_array(attrs[name + "_as_tensor"]), dtype=np.float64).ravel()
     if name in attrs:
@@ -299,7 +65,7 @@ _V5_MODES = {0: "BRANCH_LEQ", 1: "BRANCH_LT", 2: "BRANCH_GTE", 3: "BRANCH_GT", 4
 
 
 def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
-    where = _node_label(node)
+    where = node_label(node)
     need = ("nodes_featureids", "nodes_modes", "nodes_truenodeids", "nodes_falsenodeids", "nodes_trueleafs",
             "nodes_falseleafs", "leaf_targetids", "leaf_weights", "tree_roots")
     missing = [k for k in need if k not in a]
@@ -373,7 +139,7 @@ def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
 
 
 def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, List[float]]:
-    where = _node_label(node)
+    where = node_label(node)
     classifier = node.op_type == "TreeEnsembleClassifier"
     pre = "class" if classifier else "target"
     need = ("nodes_treeids", "nodes_nodeids", "nodes_featureids", "nodes_modes", "nodes_truenodeids",
@@ -449,7 +215,7 @@ def _before(t: float) -> float:
     return float(np.nextafter(t, -np.inf))
 
 
-def _to_ir_trees(generic: List[_GenericTree], n_targets: int, path: _InputPath, where: str,
+def _to_ir_trees(generic: List[_GenericTree], n_targets: int, path: InputPath, where: str,
                  n_features: int) -> Tuple[List[Tree], Dict[int, int]]:
     """Neutral trees -> hub trees (one per target a tree feeds), and the largest category
     code seen per categorical feature."""
@@ -535,7 +301,7 @@ def _to_ir_trees(generic: List[_GenericTree], n_targets: int, path: _InputPath, 
     return out, {f: max_code.get(f, 0) for f, kind in kinds.items() if kind == "categorical"}
 
 
-def _classes_from(values: Any) -> List[Any]:
+def classes_from(values: Any) -> List[Any]:
     out = []
     for v in np.asarray(values).ravel():
         if isinstance(v, bytes):
@@ -546,9 +312,9 @@ def _classes_from(values: Any) -> List[Any]:
     return out
 
 
-def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
+def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
     """Post-transform, task, classes, binary rule and raw-score adjustments after the tree."""
-    where = _node_label(tree)
+    where = node_label(tree)
     info: Dict[str, Any] = {"post": None, "classes": None, "binary_rule": None, "divide": None, "add": None}
     tree_post = attrs.get("post_transform", "NONE" if tree.op_type != "TreeEnsemble" else 0)
     if isinstance(tree_post, bytes):
@@ -569,7 +335,7 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
         if n.op_type not in OUTPUT_OPS or n.domain not in ("", "ai.onnx", ML_DOMAIN) or \
                 (n.domain == ML_DOMAIN and n.op_type != "ZipMap"):
             raise OnnxReadError("%s after the tree operator is not supported (allowed there: %s)"
-                                % (_node_label(n), ", ".join(OUTPUT_OPS)))
+                                % (node_label(n), ", ".join(OUTPUT_OPS)))
     # raw = tree output, then (ours, combine "mean") Div by constant tree counts, then Add base
     raw = tree.output[0] if tree.op_type != "TreeEnsembleClassifier" else None
     # (a tree output that is itself a graph output is the raw score: boxwood's samme and
@@ -583,7 +349,7 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
                 other = u.input[1] if u.input[0] == raw else u.input[0]
                 c = graph.const(other)
                 if c is None or (step == "Div" and u.input[0] != raw):
-                    raise OnnxReadError("%s must %s a constant" % (_node_label(u), step.lower()))
+                    raise OnnxReadError("%s must %s a constant" % (node_label(u), step.lower()))
                 info["divide" if step == "Div" else "add"] = np.asarray(c, dtype=np.float64).ravel()
                 raw = u.output[0]
     info["raw"] = raw
@@ -603,7 +369,7 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
                     kind = "logistic_double"
                 else:
                     raise OnnxReadError("%s scales the raw score before the logistic by something other than 2"
-                                        % _node_label(src))
+                                        % node_label(src))
             found.add(kind)
     if tree_post != "NONE":
         if found:
@@ -628,21 +394,21 @@ def _outputs(graph: _Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]:
         labels = attrs.get("classlabels_int64s") or attrs.get("classlabels_strings")
         if not labels:
             raise OnnxReadError("%s lists no class labels" % where)
-        info["classes"] = _classes_from(labels)
+        info["classes"] = classes_from(labels)
         info["binary_rule"] = "raw_gt_0"
     else:
         for n in down:
             if n.op_type == "Gather" and graph.const(n.input[0]) is not None and n.output[0] in graph.outputs:
-                info["classes"] = _classes_from(graph.const(n.input[0]))
+                info["classes"] = classes_from(graph.const(n.input[0]))
             if n.op_type in ("Greater", "GreaterOrEqual") and raw in n.input:
                 c = graph.const(n.input[1])
                 if c is None or np.asarray(c).size != 1 or float(np.asarray(c).ravel()[0]) != 0.0:
-                    raise OnnxReadError("%s must compare the raw score with the constant 0" % _node_label(n))
+                    raise OnnxReadError("%s must compare the raw score with the constant 0" % node_label(n))
                 info["binary_rule"] = "raw_gt_0" if n.op_type == "Greater" else "raw_ge_0"
     return info
 
 
-def _scalar(graph: _Graph, node: Any, other_than: str) -> Optional[float]:
+def _scalar(graph: Graph, node: Any, other_than: str) -> Optional[float]:
     """The scalar constant among ``node``'s inputs other than ``other_than``, or None."""
     for name in node.input:
         c = graph.const(name)
@@ -651,7 +417,7 @@ def _scalar(graph: _Graph, node: Any, other_than: str) -> Optional[float]:
     return None
 
 
-def _special_transform(graph: _Graph, raw: str, down: List[Any]) -> Optional[Tuple[str, Dict[str, float]]]:
+def _special_transform(graph: Graph, raw: str, down: List[Any]) -> Optional[Tuple[str, Dict[str, float]]]:
     """boxwood's isolation-forest and AdaBoost post-processing (docs/onnx.md):
 
     * isolation: ``Pow(2, Neg(Div(raw, denominator)))``, ``Neg``, ``Sub(score, offset)``;
@@ -663,7 +429,7 @@ def _special_transform(graph: _Graph, raw: str, down: List[Any]) -> Optional[Tup
     if pows:
         if len(divs) != 1 or len(pows) != 1:
             raise OnnxReadError("%s: boxwood reads a power after the trees only as an isolation forest's "
-                                "score -(2 ** -(raw / denominator))" % _node_label(pows[0]))
+                                "score -(2 ** -(raw / denominator))" % node_label(pows[0]))
         power = pows[0]
         den = _scalar(graph, divs[0], raw)
         base = graph.const(power.input[0])
@@ -671,12 +437,12 @@ def _special_transform(graph: _Graph, raw: str, down: List[Any]) -> Optional[Tup
         offset = _scalar(graph, subs[0], subs[0].input[0]) if len(subs) == 1 else None
         if den is None or base is None or float(np.asarray(base).ravel()[0]) != 2.0 or offset is None:
             raise OnnxReadError("%s: an isolation forest's score needs Pow(2, -(raw / constant)) and one Sub of a "
-                                "constant offset" % _node_label(power))
+                                "constant offset" % node_label(power))
         return "isolation", {"denominator": den, "offset": offset}
     if len(divs) == 1 and raw in graph.outputs and any(n.op_type == "Softmax" for n in down):
         total = _scalar(graph, divs[0], raw)
         if total is None:
-            raise OnnxReadError("%s must divide the vote sums by a constant total weight" % _node_label(divs[0]))
+            raise OnnxReadError("%s must divide the vote sums by a constant total weight" % node_label(divs[0]))
         return "samme", {"weight_total": total}
     return None
 
@@ -684,26 +450,26 @@ def _special_transform(graph: _Graph, raw: str, down: List[Any]) -> Optional[Tup
 def read_onnx(source: Any) -> Ensemble:
     """Read an ONNX tree-ensemble graph (path, bytes or ModelProto) into an Ensemble."""
     model = load(source)
-    graph = _Graph(model)
+    graph = Graph(model)
     trees = [n for n in graph.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN]
     if not trees:
-        ops = ", ".join(_node_label(n) for n in graph.nodes[:12]) + (", ..." if len(graph.nodes) > 12 else "")
+        ops = ", ".join(node_label(n) for n in graph.nodes[:12]) + (", ..." if len(graph.nodes) > 12 else "")
         raise OnnxReadError("the graph has no tree-ensemble operator (ai.onnx.ml %s); its nodes: %s"
                             % (", ".join(TREE_OPS), ops))
     if len(trees) > 1:
         raise OnnxReadError("the graph has %d tree-ensemble operators (%s); boxwood reads graphs with one"
-                            % (len(trees), ", ".join(_node_label(n) for n in trees)))
+                            % (len(trees), ", ".join(node_label(n) for n in trees)))
     tree = trees[0]
-    where = _node_label(tree)
-    path = _InputPath(graph, tree)
+    where = node_label(tree)
+    path = InputPath(graph, tree)
     related = set(id(n) for n in graph.upstream(list(tree.input))) | set(id(n) for n in graph.downstream(list(tree.output)))
     related.add(id(tree))
     for n in graph.nodes:
         if id(n) not in related and not (n.op_type == "Constant" and n.domain in ("", "ai.onnx")):
             raise OnnxReadError("%s is not connected to the tree operator; boxwood reads graphs that only "
-                                "prepare the input, run the trees and shape the outputs" % _node_label(n))
+                                "prepare the input, run the trees and shape the outputs" % node_label(n))
     attrs = graph.attrs(tree)
-    meta = _metadata(model)
+    meta = metadata(model)
     semantics = meta.get("boxwood.semantics") if isinstance(meta.get("boxwood.semantics"), dict) else {}
     names = meta.get("boxwood.feature_names")
     if tree.op_type == "TreeEnsemble":
@@ -714,7 +480,7 @@ def read_onnx(source: Any) -> Ensemble:
     n_features = path.n_features or (len(names) if isinstance(names, list) else None)
     if n_features is None:
         n_features = 1 + max([s[1] for g in generic for s in g.splits.values()] or [0])
-    info = _outputs(graph, tree, attrs)
+    info = outputs_of(graph, tree, attrs)
     ir_trees, max_code = _to_ir_trees(generic, max(n_targets, 1), path, where, n_features)
 
     # base values: the operator's, boxwood's leading single-leaf trees, an Add after the trees
@@ -847,260 +613,9 @@ def read_onnx(source: Any) -> Ensemble:
 def read_file(path: Union[str, Path], reference_rows: int = 6) -> Ensemble:
     """Read an ONNX file; make sure it carries reference rows (the source model's, from
     boxwood metadata, else the hub's own scores on probe rows -- stated in provenance)."""
+    from ..json.device import attach_own_reference
+
     ensemble = read_onnx(path)
     if ensemble.reference is None:
         attach_own_reference(ensemble, reference_rows)
     return ensemble
-
-
-def attach_own_reference(ensemble: Ensemble, n_rows: int = 6) -> None:
-    """Reference rows scored by the hub itself (the device scorer on this ensemble), for
-    ONNX files that do not carry their source model's numbers."""
-    from boxwood_runtime import scorer
-
-    from ..source import probe_rows
-    from ..writers.json_artefact import to_document
-
-    rows = probe_rows(ensemble, n_rows)
-    doc = to_document(ensemble)
-    model = scorer.Model(doc, dict(scorer.DEFAULT_LIMITS), unknown_category="as_missing")
-    raw, transformed = [], []
-    for i, row in enumerate(rows):
-        r = model.raw_scores(model.prepare(row, i))
-        raw.append(list(model.exact_values(r)) if hasattr(model, "exact_values") else r)
-        transformed.append(model.transform_raw(r))
-    ensemble.reference = Reference(rows=rows, raw=raw, transformed=transformed)
-    ensemble.provenance["reference_rows"] = ("scored by boxwood's device scorer from the ONNX graph's trees "
-                                             "(the file carries no source-model numbers)")
-
-
-# ----------------------------------------------------------------------------- evaluators
-def rows_to_matrix(ensemble: Ensemble, rows: Sequence[Sequence[Any]], dtype: Any = np.float64) -> np.ndarray:
-    """Rows in feature order (numbers, category values, None) as the graph's input: NaN
-    for missing, the category's code for a categorical value (NaN for an unseen one)."""
-    codes = [None if not f.is_categorical else {c: i for i, c in enumerate(f.categories)} for f in ensemble.features]
-    out = np.empty((len(rows), len(ensemble.features)), dtype=np.float64)
-    for i, row in enumerate(rows):
-        for j, v in enumerate(row):
-            if v is None:
-                out[i, j] = np.nan
-            elif codes[j] is not None and not (isinstance(v, float) and math.isnan(v)):
-                out[i, j] = codes[j].get(v, np.nan)
-            else:
-                out[i, j] = float(v)
-    with np.errstate(over="ignore"):
-        return out.astype(dtype)
-
-
-def _tree_value_type(graph: _Graph, tree: Any, path: _InputPath) -> int:
-    """Element type of the values the tree operator receives."""
-    for node in path.path_nodes:  # nearest the tree first
-        if node.op_type == "Cast":
-            return graph.attrs(node)["to"]
-    return path.input_type
-
-
-def _expose_raw(model: Any) -> Tuple[Any, bool]:
-    """A copy of ``model`` with an output ``raw_score`` holding the raw scores (before any
-    post-transform), and whether the raw scores are column 1 of a binary classifier's
-    two-column score output (onnxruntime lays a binary TreeEnsembleClassifier's scores
-    out as [-s, s] when post_transform is NONE)."""
-    onnx = _onnx()
-    graph = _Graph(model)
-    if RAW_OUTPUT in graph.outputs:
-        return model, False
-    copy = onnx.ModelProto()
-    copy.CopyFrom(model)
-    g = _Graph(copy)
-    tree = [n for n in g.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN][0]
-    T = onnx.TensorProto
-    binary_column = False
-    for a in tree.attribute:
-        if a.name == "post_transform":
-            if a.type == onnx.AttributeProto.STRING:
-                a.s = b"NONE"
-            else:
-                a.i = 0
-    if tree.op_type == "TreeEnsembleClassifier":
-        source, elem = tree.output[1], T.FLOAT
-        attrs = g.attrs(tree)
-        labels = attrs.get("classlabels_int64s") or attrs.get("classlabels_strings")
-        used = set(attrs.get("class_ids", []))
-        binary_column = bool(labels) and len(labels) == 2 and len(used) <= 1
-    else:
-        info = _outputs(g, tree, g.attrs(tree))
-        source = info["raw"]
-        elem = T.FLOAT if tree.op_type != "TreeEnsemble" else _tree_value_type(g, tree, _InputPath(g, tree))
-    copy.graph.node.append(onnx.helper.make_node("Identity", [source], [RAW_OUTPUT], name="boxwood_raw_score"))
-    copy.graph.output.append(onnx.helper.make_tensor_value_info(RAW_OUTPUT, elem, None))
-    return copy, binary_column
-
-
-RAW_OUTPUT = "raw_score"
-
-
-class _OnnxEvaluator:
-    """Shared part: rows -> input matrix -> named outputs, in the verifier's evaluator
-    contract (boxwood.verify.evaluators: ``name``, ``evaluate(rows)`` and the precision
-    properties; ``raw``, ``transformed`` and ``labels`` too)."""
-
-    name = "onnx"
-    compare_precision = None  # compares as the ensemble read from the file states
-    transform_implementation = "ONNX operators Sigmoid / Softmax / Exp"
-
-    def __init__(self, model: Any, ensemble: Optional[Ensemble] = None):
-        self.model = model if hasattr(model, "graph") else load(model)
-        self.ensemble = ensemble if ensemble is not None else read_onnx(self.model)
-        graph = _Graph(self.model)
-        T = _onnx().TensorProto
-        gi = graph.inputs[0]
-        tree = [n for n in graph.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN][0]
-        self.input_name = gi.name
-        self.dtype = np.float32 if gi.type.tensor_type.elem_type == T.FLOAT else np.float64
-        self.input_precision = "float32" if self.dtype == np.float32 else "float64"
-        value_type = _tree_value_type(graph, tree, _InputPath(graph, tree))
-        exact_op = tree.op_type == "TreeEnsemble" and value_type == T.DOUBLE
-        self.summation_precision = "float64" if exact_op else "float32"
-        semantics = _metadata(self.model).get("boxwood.semantics")
-        leading = isinstance(semantics, dict) and semantics.get("leading_base_trees")
-        # Base value first, then the trees in order: boxwood's exact graphs (the base value
-        # is a leading tree); opset-3 operators add base_values after the trees.
-        self.summation_order = "tree" if (exact_op and (leading or self.ensemble.base_values == [0.0] * len(
-            self.ensemble.base_values))) else "any"
-        self.output_names = [o.name for o in self.model.graph.output]
-        self.raw_model, self._binary_column = _expose_raw(self.model)
-        self._prepare: Any = None
-
-    def use_source_preprocessing(self, source: Ensemble) -> None:
-        """Rows given to this evaluator are raw-field records of ``source`` (a pipeline's
-        ensemble) while the graph takes the preprocessed features (boxwood writes a
-        pipeline's tree part only): prepare each row with the device scorer's own
-        preprocessing of ``source`` (boxwood_runtime.scorer.Model.prepare) before the
-        graph. A record the preprocessing refuses raises RecordError (a ValueError)."""
-        if source.fields is None or self.ensemble.fields is not None:
-            return
-        from ..writers.onnx_writer import feature_preparer
-
-        self._prepare = feature_preparer(source)
-        self.name = "%s (fed the features preprocessed by boxwood's device scorer)" % type(self).name
-
-    def properties(self) -> Dict[str, Any]:
-        return {"input_precision": self.input_precision, "compare_precision": self.compare_precision,
-                "summation_order": self.summation_order, "summation_precision": self.summation_precision,
-                "transform_implementation": self.transform_implementation}
-
-    def matrix(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
-        if self._prepare is not None:
-            rows = [self._prepare(r, i) for i, r in enumerate(rows)]
-        return rows_to_matrix(self.ensemble, rows, self.dtype)
-
-    def run(self, rows: Sequence[Sequence[Any]]) -> Dict[str, np.ndarray]:
-        """All graph outputs (and ``raw_score``) for ``rows``, by output name."""
-        X = self.matrix(rows)
-        out = dict(zip(self.output_names, self._run(self.model, X, self.output_names)))
-        if RAW_OUTPUT not in out:
-            raw = self._run(self.raw_model, X, [RAW_OUTPUT])[0]
-            out[RAW_OUTPUT] = raw[:, 1:] if self._binary_column else raw
-        return out
-
-    def _run(self, model: Any, X: np.ndarray, names: List[str]) -> List[np.ndarray]:
-        raise NotImplementedError
-
-    def _split(self, out: Dict[str, np.ndarray], n: int) -> Tuple[np.ndarray, np.ndarray, Optional[List[Any]]]:
-        raw = np.asarray(out[RAW_OUTPUT], dtype=np.float64).reshape(n, -1)
-        e = self.ensemble
-        if e.post_transform == "samme" and "decision" in out:
-            # the exact values of AdaBoost are its decision values (scorer.Model.exact_values)
-            raw = np.asarray(out["decision"], dtype=np.float64).reshape(n, -1)
-        if e.task == "outlier_detection":
-            score = np.asarray(out["score"], dtype=np.float64).reshape(n, -1)
-            return raw, score, [int(v) for v in np.asarray(out["label"]).ravel()]
-        if e.task == "classification":
-            probs = [v for k, v in out.items() if k != RAW_OUTPUT and np.asarray(v).dtype.kind == "f"
-                     and np.asarray(v).ndim == 2]
-            p = np.asarray(out.get("probabilities", probs[0] if probs else raw), dtype=np.float64).reshape(n, -1)
-            transformed = p[:, 1:] if e.n_outputs == 1 and p.shape[1] == 2 else p
-            label_out = out.get("label")
-            if label_out is None:
-                label_out = next(v for k, v in out.items() if np.asarray(v).ndim == 1)
-            return raw, transformed, _classes_from(label_out)
-        pred = out.get("prediction")
-        if pred is None:
-            pred = next(v for k, v in out.items() if k != RAW_OUTPUT)
-        return raw, np.asarray(pred, dtype=np.float64).reshape(n, -1), None
-
-    def evaluate(self, rows: Sequence[Sequence[Any]]) -> Any:
-        """(raw, transformed, labels) as the verifier's ``Outputs``."""
-        raw, transformed, labels = self._split(self.run(rows), len(rows))
-        try:
-            from ..verify.evaluators import Outputs
-        except ImportError:  # the verifier is optional here
-            return raw, transformed, labels
-        return Outputs(raw, transformed, labels)
-
-    def raw(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
-        """Raw scores (n_rows, n_outputs) as float64."""
-        return self._split(self.run(rows), len(rows))[0]
-
-    def transformed(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
-        """The prediction, or the class probabilities (positive class only for a binary
-        classifier with one raw output), float64, (n_rows, n)."""
-        return self._split(self.run(rows), len(rows))[1]
-
-    def labels(self, rows: Sequence[Sequence[Any]]) -> Optional[List[Any]]:
-        return self._split(self.run(rows), len(rows))[2]
-
-
-class OnnxRuntimeEvaluator(_OnnxEvaluator):
-    """onnxruntime, one thread: its tree operator then adds trees in tree order (with
-    more threads it splits the trees into groups and adds the group sums, which
-    changes the last bits; docs/onnx.md)."""
-
-    name = "onnxruntime"
-    transform_implementation = "onnxruntime kernels (Sigmoid, Softmax, Exp)"
-
-    def __init__(self, model: Any, ensemble: Optional[Ensemble] = None):
-        super().__init__(model, ensemble)
-        self._sessions: Dict[int, Any] = {}
-
-    def _session(self, model: Any) -> Any:
-        import onnxruntime as ort
-
-        if id(model) not in self._sessions:
-            options = ort.SessionOptions()
-            options.intra_op_num_threads = 1
-            options.inter_op_num_threads = 1
-            options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-            options.log_severity_level = 3
-            self._sessions[id(model)] = ort.InferenceSession(model.SerializeToString(), options,
-                                                             providers=["CPUExecutionProvider"])
-        return self._sessions[id(model)]
-
-    def _run(self, model: Any, X: np.ndarray, names: List[str]) -> List[np.ndarray]:
-        return self._session(model).run(names, {self.input_name: X})
-
-
-class OnnxReferenceEvaluator(_OnnxEvaluator):
-    """onnx.reference.ReferenceEvaluator: ONNX's own Python implementation of each
-    operator (slow: a few hundred rows per second on a tree ensemble)."""
-
-    name = "onnx.reference"
-    transform_implementation = "onnx.reference (numpy)"
-
-    def __init__(self, model: Any, ensemble: Optional[Ensemble] = None):
-        super().__init__(model, ensemble)
-        self._sessions: Dict[int, Any] = {}
-
-    def _run(self, model: Any, X: np.ndarray, names: List[str]) -> List[np.ndarray]:
-        from onnx.reference import ReferenceEvaluator
-
-        if id(model) not in self._sessions:
-            self._sessions[id(model)] = ReferenceEvaluator(model)
-        return self._sessions[id(model)].run(names, {self.input_name: X})
-
-
-def load_for_verify(path: Union[str, Path]) -> Tuple[Ensemble, List[Any]]:
-    """(Ensemble, [evaluators]) for an ONNX file: what the verifier's registry expects."""
-    model = load(path)
-    ensemble = read_onnx(model)
-    return ensemble, [OnnxRuntimeEvaluator(model, ensemble)]

@@ -10,11 +10,14 @@ from typing import Any, Dict, Union
 
 from boxwood_runtime import scorer
 
-from ..ir import Ensemble, Feature, Reference, Tree
+from ...ir import Ensemble, Feature, Reference, Tree
 
 
 def _num(v: Any) -> float:
-    return scorer._number(v, "value")
+    """A number as the artefact carries it (a float, or "inf"/"-inf") as a float."""
+    if isinstance(v, str):
+        return {"inf": float("inf"), "-inf": float("-inf")}[v]
+    return float(v)
 
 
 def from_document(doc: Dict[str, Any]) -> Ensemble:

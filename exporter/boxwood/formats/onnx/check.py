@@ -1,5 +1,6 @@
-"""Check and describe ONNX files: what ``boxwood export ... -o x.onnx`` runs after writing,
-what ``boxwood inspect x.onnx`` prints, and the verifier's loader for ``.onnx`` files.
+"""Check, describe and open ONNX files: the check ``export`` runs after writing, what
+``inspect`` prints, and what ``verify`` opens (the registry's ``check``, ``describe`` and
+``open`` of the ONNX format).
 
 The check runs the file with onnxruntime (one thread) on reference rows and compares:
 
@@ -14,35 +15,17 @@ The check runs the file with onnxruntime (one thread) on reference rows and comp
 from __future__ import annotations
 
 import hashlib
-import math
 from pathlib import Path
 from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
-from .ir import Ensemble
-from .readers import onnx_reader
-
-
-def _device(ensemble: Ensemble) -> Any:
-    from boxwood_runtime import scorer
-
-    from .writers.json_artefact import to_document
-
-    return scorer.Model(to_document(ensemble), dict(scorer.DEFAULT_LIMITS), unknown_category="as_missing")
-
-
-def hub_scores(ensemble: Ensemble, rows: Sequence[Sequence[Any]]) -> Tuple[np.ndarray, np.ndarray]:
-    """(exact values, transformed) of ``ensemble`` on ``rows`` by the device scorer (float64):
-    the raw scores, or for AdaBoost its decision values (``Model.exact_values``)."""
-    model = _device(ensemble)
-    raws, outs = [], []
-    for i, row in enumerate(rows):
-        raw = model.raw_scores(model.prepare(row, i))
-        raws.append(model.exact_values(raw))  # AdaBoost: its decision values, as the ONNX evaluators
-        outs.append(model.transform_raw(raw))
-    return (np.array(raws, dtype=np.float64).reshape(len(rows), -1),
-            np.array(outs, dtype=np.float64).reshape(len(rows), -1))
+from ...ir import Ensemble
+from ..registry import Artefact
+from ..json.device import hub_outputs
+from .evaluators import OnnxRuntimeEvaluator
+from .parse import TREE_OPS, load, metadata
+from .reader import read_onnx
 
 
 def rows_as_float32(ensemble: Ensemble, rows: Sequence[Sequence[Any]]) -> List[List[Any]]:
@@ -73,19 +56,19 @@ def check_onnx(source: Any, expected: Optional[Ensemble] = None) -> Tuple[bool, 
     check uses the source numbers carried in the metadata, or the trees read from the file."""
     from boxwood_runtime.scorer import SELF_CHECK_ULPS
 
-    model = onnx_reader.load(source)
-    read = onnx_reader.read_onnx(model)
+    model = load(source)
+    read = read_onnx(model)
     try:
         import onnxruntime  # noqa: F401
     except ImportError:
         return True, "not run: onnxruntime is not installed (pip install \"boxwood[onnx]\")"
-    evaluator = onnx_reader.OnnxRuntimeEvaluator(model, read)
-    meta = onnx_reader._metadata(model)
+    evaluator = OnnxRuntimeEvaluator(model, read)
+    meta = metadata(model)
     semantics = meta.get("boxwood.semantics") if isinstance(meta.get("boxwood.semantics"), dict) else {}
     bound = meta.get("boxwood.raw_error_bound")
     if read.reference is not None:  # exact graph, float64 input: the source's own numbers
         ref = read.reference
-        raw, transformed, _ = evaluator._split(evaluator.run(ref.rows), len(ref.rows))
+        raw, transformed, _ = evaluator.evaluate(ref.rows)
         want = np.asarray(ref.raw, dtype=np.float64)
         if raw.shape != want.shape or not np.array_equal(raw, want):
             bad = int(np.flatnonzero(np.any(raw != want, axis=1))[0]) if raw.shape == want.shape else 0
@@ -103,18 +86,18 @@ def check_onnx(source: Any, expected: Optional[Ensemble] = None) -> Tuple[bool, 
     if basis.reference is not None:
         rows = basis.reference.rows
     else:
-        from .source import probe_rows
+        from ...reference_rows import probe_rows
 
         rows = probe_rows(basis, 6)
     if evaluator.input_precision == "float32":
         rows = rows_as_float32(basis, rows)
-    want, _ = hub_scores(basis, rows)
+    want = hub_outputs(basis, rows).raw
     raw = evaluator.raw(rows)
     if isinstance(bound, list) and len(bound) == basis.n_outputs:
         limit = np.asarray(bound, dtype=np.float64)
         what = "boxwood.raw_error_bound"
     elif evaluator.summation_precision == "float32":
-        from .writers.onnx_legacy import raw_error_bound
+        from .legacy import raw_error_bound
 
         limit = np.asarray(raw_error_bound(read), dtype=np.float64)
         what = "the float32 summation bound"
@@ -136,10 +119,10 @@ def check_onnx(source: Any, expected: Optional[Ensemble] = None) -> Tuple[bool, 
 def describe_onnx(path: Union[str, Path]) -> Dict[str, Any]:
     """What ``boxwood inspect`` shows for an ONNX file (same keys as for a JSON artefact)."""
     data = Path(path).read_bytes()
-    model = onnx_reader.load(data)
-    e = onnx_reader.read_onnx(model)
-    meta = onnx_reader._metadata(model)
-    tree = [n for n in model.graph.node if n.op_type in onnx_reader.TREE_OPS][0]
+    model = load(data)
+    e = read_onnx(model)
+    meta = metadata(model)
+    tree = [n for n in model.graph.node if n.op_type in TREE_OPS][0]
     opsets = {o.domain or "ai.onnx": o.version for o in model.opset_import}
     ok, message = check_onnx(model)
     prov = e.provenance
@@ -171,24 +154,20 @@ def describe_onnx(path: Union[str, Path]) -> Dict[str, Any]:
     }
 
 
-def load_onnx_artefact(path: Path) -> Any:
+def open_artefact(path: Path) -> Artefact:
     """The verifier's loader for ``.onnx`` files: the ensemble read from the graph and an
     onnxruntime evaluator (one thread), plus the file's own check as its self-check."""
     data = Path(path).read_bytes()
-    model = onnx_reader.load(data)
-    ensemble = onnx_reader.read_onnx(model)
-    evaluators = [onnx_reader.OnnxRuntimeEvaluator(model, ensemble)]
-    try:
-        from .verify.evaluators import Artefact
-    except ImportError:
-        return ensemble, evaluators
-    meta = onnx_reader._metadata(model)
+    model = load(data)
+    ensemble = read_onnx(model)
+    evaluators = [OnnxRuntimeEvaluator(model, ensemble)]
+    meta = metadata(model)
     notes = []
     bound = meta.get("boxwood.raw_error_bound")
     if isinstance(bound, list):
         notes.append("legacy float32 graph: leaves, base values and the sum are float32; stated raw-score "
                      "error bound per output: %s" % ", ".join("%.3g" % b for b in bound))
-    tree = [n for n in model.graph.node if n.op_type in onnx_reader.TREE_OPS][0]
+    tree = [n for n in model.graph.node if n.op_type in TREE_OPS][0]
     return Artefact(str(path), ensemble, evaluators,
                     format="ONNX (%s, ai.onnx.ml opset %s)" % (
                         tree.op_type, {o.domain: o.version for o in model.opset_import}.get("ai.onnx.ml")),

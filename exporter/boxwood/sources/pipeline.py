@@ -24,7 +24,11 @@ from typing import Any, Dict, List, Optional, Tuple
 
 
 from ..ir import Ensemble
-from .common import UnsupportedModel, plain
+from . import boosting, forests
+from .common import UnsupportedModel, is_nan, plain
+
+# The estimators a pipeline may end in (a pipeline inside a pipeline is not read).
+FINAL_READERS = (boosting.read, forests.read)
 
 SUPPORTED_STEPS = ("ColumnTransformer (passthrough, drop, columns by name, index, mask)",
                    "SimpleImputer (constant, mean, median, most_frequent)",
@@ -38,10 +42,6 @@ Program = Tuple[str, List[Dict[str, Any]]]
 def _unsupported(step: Any, where: str, why: str = "") -> UnsupportedModel:
     return UnsupportedModel("pipeline step %s (%s) is not supported%s; supported steps: %s"
                             % (where, type(step).__name__, ": " + why if why else "", "; ".join(SUPPORTED_STEPS)))
-
-
-def _is_nan(v: Any) -> bool:
-    return isinstance(v, float) and math.isnan(v)
 
 
 def _number_or_nan(v: Any) -> Optional[float]:
@@ -71,7 +71,7 @@ def _apply(step: Any, columns: List[Program], where: str) -> List[Program]:
     if isinstance(step, SimpleImputer):
         if step.add_indicator:
             raise _unsupported(step, where, "add_indicator=True adds columns")
-        if not _is_nan(step.missing_values) and step.missing_values is not None:
+        if not is_nan(step.missing_values) and step.missing_values is not None:
             raise _unsupported(step, where, "missing_values other than NaN")
         stats = list(step.statistics_)
         if len(stats) != len(columns):
@@ -79,7 +79,7 @@ def _apply(step: Any, columns: List[Program], where: str) -> List[Program]:
         out = []
         for (field, steps), value in zip(columns, stats):
             value = plain(value)
-            if value is None or _is_nan(value):
+            if value is None or is_nan(value):
                 raise _unsupported(step, where, "column %r was all missing in training and is dropped" % field)
             out.append((field, steps + [{"op": "impute", "value": value}]))
         return out
@@ -90,7 +90,7 @@ def _apply(step: Any, columns: List[Program], where: str) -> List[Program]:
         for (field, steps), cats in zip(columns, step.categories_):
             values = [plain(c) for c in cats]
             op: Dict[str, Any] = {"op": "encode"}
-            if values and _is_nan(values[-1]) or (values and values[-1] is None):
+            if values and is_nan(values[-1]) or (values and values[-1] is None):
                 values = values[:-1]  # NaN is listed last when training saw missing values
                 op["missing"] = _number_or_nan(step.encoded_missing_value)
             op["categories"] = values
@@ -127,12 +127,13 @@ def read(model: Any) -> Optional[Ensemble]:
     """Return the Ensemble (with preprocessing) for a supported Pipeline, or None."""
     from sklearn.pipeline import Pipeline
 
-    from . import read_model
-
     if not isinstance(model, Pipeline):
         return None
     *pre, (last_name, final) = model.steps
-    ensemble = read_model(final)
+    ensemble = next((e for e in (read(final) for read in FINAL_READERS) if e is not None), None)
+    if ensemble is None:
+        raise UnsupportedModel("the pipeline's final step %r is %s, which is not a tree model boxwood reads"
+                               % (last_name, type(final).__name__))
     names = getattr(model, "feature_names_in_", None)
     n_in = int(model.n_features_in_)
     fields = [str(n) for n in names] if names is not None else ["x%d" % i for i in range(n_in)]

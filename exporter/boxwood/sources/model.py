@@ -1,7 +1,9 @@
 """Ask the source (scikit-learn) model for its own numbers on rows given in feature order.
 
-Used to embed self-check rows in an artefact, by the demo, and by the tests: it is
-the reference every evaluator is compared with.
+Used to embed self-check rows in an artefact, by the verifier (:class:`SourceEvaluator`),
+the demo and the tests: it is the reference every evaluator is compared with. Which of
+scikit-learn's methods gives which kind of value is this module's; what each kind means
+is the output contract's (boxwood.contract).
 """
 from __future__ import annotations
 
@@ -9,7 +11,8 @@ from typing import Any, List, Sequence
 
 import numpy as np
 
-from .ir import Ensemble
+from ..contract import Evaluator, OutputContract, Outputs
+from ..ir import Ensemble
 
 
 class SourceModel:
@@ -57,7 +60,7 @@ class SourceModel:
         X = self.matrix(rows)
         m = self.model
         if self.ensemble.task == "outlier_detection":
-            from .readers.sklearn_forests import isolation_path_sums
+            from .forests import isolation_path_sums
 
             out = isolation_path_sums(m, X)
         elif self.ensemble.task == "classification" and self.ensemble.post_transform == "identity":
@@ -78,64 +81,44 @@ class SourceModel:
         if self.ensemble.task == "outlier_detection":
             return np.asarray(self.model.score_samples(X), dtype=np.float64).reshape(len(rows), -1)
         if self.ensemble.task == "classification":
-            p = np.asarray(self.model.predict_proba(X), dtype=np.float64)
-            return p[:, 1:] if self.ensemble.n_outputs == 1 else p
+            return OutputContract(self.ensemble).positive_class(self.model.predict_proba(X))
         return np.asarray(self.model.predict(X), dtype=np.float64).reshape(len(rows), -1)
 
     def predict(self, rows: Sequence[Sequence[Any]]) -> List[Any]:
         return list(self.model.predict(self.matrix(rows)))
 
 
-def probe_rows(ensemble: Ensemble, n_rows: int = 6) -> List[List[Any]]:
-    """A few deterministic rows that exercise the model: values exactly at split
-    thresholds and one float step above them, each category in turn, and (where the
-    model routes missing values) one row of all-missing values."""
-    import math
+class SourceEvaluator(Evaluator):
+    """The fitted source model itself (scikit-learn's own predict / decision_function /
+    predict_proba) in the evaluator contract: what the verifier compares artefacts with."""
 
-    thresholds = [sorted({t.threshold[i] for t in ensemble.trees for i in range(t.n_nodes)
-                          if t.feature[i] == j and t.left_categories[i] is None
-                          and math.isfinite(t.threshold[i])})
-                  for j in range(len(ensemble.features))]
-    if ensemble.fields is not None:
-        return _raw_field_rows(ensemble, thresholds, n_rows)
-    rows = []
-    for r in range(n_rows):
-        row: List[Any] = []
-        for j, f in enumerate(ensemble.features):
-            if f.is_categorical:
-                row.append(f.categories[r % len(f.categories)])
-                continue
-            ts = thresholds[j]
-            if not ts:
-                row.append(0.0)
-                continue
-            v = ts[(r * len(ts)) // n_rows]
-            if ensemble.compare_precision == "float32":
-                v = float(np.float32(v))
-            row.append(float(np.nextafter(v, np.inf)) if r % 2 else v)
-        rows.append(row)
-    if ensemble.missing_values == "route":
-        rows.append([None] * len(ensemble.features))
-    return rows
+    transform_implementation = "scikit-learn (numpy.exp; scipy.special.expit for logistic)"
+    block_rows = 8192  # scikit-learn's per-call cost (validation, threads) is high
+
+    def __init__(self, model: Any, ensemble: Ensemble):
+        self.source = SourceModel(model, ensemble)
+        self.ensemble = ensemble
+        self.name = ensemble.provenance.get("estimator") or type(model).__name__
+        # Boosting adds base value, then trees in order, in float64 (scikit-learn's
+        # predict_stages and HistGradientBoosting's _raw_predict). Forests add per-tree
+        # predictions through joblib; with n_jobs None or 1 that runs the trees one after
+        # the other in order (the conformance suite sees bit-identical means), with more
+        # jobs the order depends on the threads (from sklearn.ensemble._forest, stated).
+        final = model.steps[-1][1] if hasattr(model, "steps") else model
+        jobs = getattr(final, "n_jobs", None)
+        self.summation_order = "tree" if ensemble.combine == "sum" or jobs in (None, 1) else "any"
+
+    def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
+        # scikit-learn's finiteness check sums the rows; extreme probes overflow that sum
+        # (harmlessly: it then checks each value), which numpy would warn about.
+        with np.errstate(over="ignore", invalid="ignore"):
+            raw = self.source.raw(rows)
+            transformed = self.source.transformed(rows)
+            labels = None
+            if self.ensemble.task != "regression":
+                labels = [_plain(v) for v in self.source.predict(rows)]
+        return Outputs(raw, transformed, labels)
 
 
-def _raw_field_rows(ensemble: Ensemble, thresholds: List[List[float]], n_rows: int) -> List[List[Any]]:
-    """Reference rows for an ensemble with preprocessing: raw field values. A field that
-    is encoded cycles through its categories; a numeric field takes the thresholds of the
-    feature it feeds. One more row has every field missing."""
-    import math
-
-    per_field: List[List[Any]] = [[] for _ in ensemble.fields]
-    for j, f in enumerate(ensemble.features):
-        fi = ensemble.fields.index(f.source["field"])
-        encodes = [st for st in f.source["steps"] if st["op"] == "encode"]
-        if encodes:
-            per_field[fi] = list(encodes[0]["categories"])
-        elif not per_field[fi]:
-            per_field[fi] = [float(np.float32(t)) if ensemble.compare_precision == "float32" else t
-                             for t in thresholds[j] if math.isfinite(t)] or [0.0]
-    rows = []
-    for r in range(n_rows):
-        rows.append([vals[(r * len(vals)) // n_rows] if vals else 0.0 for vals in per_field])
-    rows.append([None] * len(ensemble.fields))
-    return rows
+def _plain(v: Any) -> Any:
+    return v.item() if hasattr(v, "item") and not isinstance(v, (str, bytes)) else v

@@ -12,7 +12,7 @@ regressor's sum does not.
 What is exact and what is not (docs/onnx.md, "The legacy float32 graph"):
 
 * **Decisions are exact for every float32 input.** Each float64 threshold ``t`` is
-  written as ``t32 = the largest float32 <= t`` (:func:`float32_threshold`), so for
+  written as ``t32 = the largest float32 <= t`` (:func:`boxwood.numerics.float32_floor`), so for
   every float32 ``x``: ``x <= t32`` exactly when ``x <= t`` (there is no float32
   strictly between ``t32`` and ``t``). That is the source's decision whether it
   compares float32 inputs (classic trees) or float64 inputs (a float32 value is a
@@ -36,8 +36,9 @@ from typing import Any, Dict, List
 
 import numpy as np
 
-from ..ir import LEAF, Ensemble, ModelError
-from .onnx_writer import (
+from ...ir import LEAF, Ensemble, ModelError
+from ... import numerics
+from .build import (
     CODE_OFFSET,
     INPUT_NAME,
     META_ERROR_BOUND,
@@ -58,27 +59,8 @@ LEGACY_OPSET = 13
 LEGACY_ML_OPSET = 3
 # Categorical chains copy subtrees; refuse graphs that would grow past this many nodes.
 MAX_LEGACY_NODES = 1 << 22
-U32 = 2.0 ** -24  # unit roundoff of float32 (round to nearest)
-U64 = 2.0 ** -53
-
-
-def float32_threshold(t: float) -> float:
-    """The largest float32 that is <= ``t`` (as a Python float); infinities stay.
-
-    For every float32 ``x``: ``x <= float32_threshold(t)`` exactly when ``x <= t``."""
-    if math.isnan(t):
-        raise ValueError("a threshold is NaN")
-    if math.isinf(t):
-        return t
-    with np.errstate(over="ignore"):
-        v = np.float32(t)
-    if float(v) > t:
-        v = np.nextafter(v, np.float32(-np.inf))
-    return float(v)
-
-
-def _gamma(n: int, u: float) -> float:
-    return n * u / (1.0 - n * u)
+U32 = numerics.UNIT_ROUNDOFF["float32"]
+U64 = numerics.UNIT_ROUNDOFF["float64"]
 
 
 def raw_error_bound(ensemble: Ensemble) -> List[float]:
@@ -105,11 +87,11 @@ def raw_error_bound(ensemble: Ensemble) -> List[float]:
         n = count[j] + 1
         if ensemble.combine == "sum":
             a = base + biggest[j]
-            err = (U32 + _gamma(n - 1, U32) * (1 + U32) + _gamma(n - 1, U64)) * a
+            err = (U32 + float(numerics.gamma(n - 1, U32)) * (1 + U32) + float(numerics.gamma(n - 1, U64))) * a
         else:
             c = max(count[j], 1)
             mean = biggest[j] / c
-            err = ((U32 + _gamma(n - 1, U32) * (1 + U32) + _gamma(n - 1, U64)) * biggest[j] / c
+            err = ((U32 + float(numerics.gamma(n - 1, U32)) * (1 + U32) + float(numerics.gamma(n - 1, U64))) * biggest[j] / c
                    + 2 * U32 * (base + mean) * (1 + U32) + U32 * base)
         err += (n + 2) * 2.0 ** -149
         bounds.append(err * (1 + 2.0 ** -20))  # room for the rounding of this computation
@@ -158,7 +140,7 @@ def _tree_attributes(ensemble: Ensemble) -> Dict[str, Any]:
                 t_ids.append(tree.output)
                 t_weights.append(_leaf32(tree.value[node]))
             elif tree.left_categories[node] is None:
-                local = new("BRANCH_LEQ", tree.feature[node], float32_threshold(tree.threshold[node]),
+                local = new("BRANCH_LEQ", tree.feature[node], numerics.float32_floor(tree.threshold[node]),
                             1 if tree.missing_left[node] else 0)
                 stack.append((tree.right[node], local, "false"))
                 stack.append((tree.left[node], local, "true"))

@@ -1,4 +1,5 @@
-"""Floating-point facts the verifier's proofs rest on, computed from the formats themselves.
+"""Exact floating-point facts (IEEE 754 binary64 and binary32), shared by the verifier's proofs and
+the float32 ONNX writer; computed from the formats themselves.
 
 Everything here is exact: values are found with IEEE 754 next-value steps and casts
 (numpy ``nextafter`` in float64 and float32, numpy's float64 -> float32 cast), never by
@@ -250,14 +251,6 @@ def ulp_distance(a, b) -> np.ndarray:
     na, nb = np.isnan(a), np.isnan(b)
     d = np.where(na & nb, np.uint64(0), d)
     return np.where(na ^ nb, ULP_NAN, d)
-
-
-def ulp_of(x: float) -> float:
-    """The distance from |x| to the next float64 away from zero (2**-1074 at 0)."""
-    x = abs(x)
-    if x == INF:
-        return INF
-    return next_up(x) - x
 
 
 # ----------------------------------------------------------------------------- bounds

@@ -1,57 +1,17 @@
-"""Write an :class:`~boxwood.ir.Ensemble` as an ONNX graph that computes the source's bits.
-
-The graph (ai.onnx opset 21, ai.onnx.ml opset 5; page docs/onnx.md) is::
-
-    input [N, F]  --(prepare)-->  TreeEnsemble  -->  raw_score [N, K] (float64)
-                                                  \\-> post-transform ops -> prediction
-                                                                        or label + probabilities
-
-Exactness, decision by decision (each one is tested in tests/test_onnx.py against
-scikit-learn, onnxruntime and onnx.reference):
-
-* **Thresholds and leaves are float64** (``nodes_splits`` and ``leaf_weights`` are
-  double tensors) and the tree operator runs on a float64 input, so every comparison
-  is the source's own ``x <= t`` and every leaf is the source's own number.
-* **Inputs compared as float32** (classic GradientBoosting rounds its input to float32
-  before the trees): a float64 graph input goes through ``Cast(to=FLOAT)`` and back
-  ``Cast(to=DOUBLE)``, the same round-to-nearest as numpy's ``astype(float32)``, and the
-  trees then compare it with the unchanged float64 threshold. A float32 graph input
-  (``input_type="float32"``) is widened with ``Cast(to=DOUBLE)``, which is exact.
-* **Summation order.** The tree operator adds leaf values per target in the order of
-  ``tree_roots``, starting from 0.0 (onnxruntime in single-thread mode and
-  onnx.reference both do; see docs/onnx.md). The source computes ``base + leaf_1 +
-  leaf_2 + ...``. Adding the base value afterwards (an ``Add`` node, or opset 3's
-  ``base_values``) computes ``(leaf_1 + leaf_2 + ...) + base`` instead, which differs
-  in the last bits; so the base value of each output is written as a **leading
-  single-leaf tree** for that output, which gives ``0.0 + base + leaf_1 + ...`` -- the
-  source's sum, bit for bit. The metadata says how many leading trees carry base
-  values, so the reader restores them as base values.
-* **Mean of trees** (``combine == "mean"``): the operator sums, then ``Div`` by the
-  number of trees of each output and ``Add`` the base value -- the IR's order.
-* **Categorical splits** are ``BRANCH_MEMBER`` nodes. The graph takes the category
-  *code* (the index into the feature's category list, stated in the metadata). Before
-  the trees, a code that is not one of the known codes (unseen category, negative,
-  fractional) becomes NaN, so it follows the node's missing-value direction as
-  scikit-learn does with unseen categories; and the codes are shifted by +1, because
-  onnx.reference (1.23) reads a set member equal to 0.0 as the end of the set
-  (``while (m := next(it)) and not isnan(m)``). The shift is an ``Add`` of 0.0 on the
-  numeric columns, which changes no value a comparison can see.
-* **Missing values** are NaN; ``nodes_missing_value_tracks_true`` carries each node's
-  direction (the true branch is the IR's left branch).
-
-The legacy float32 variant (ai.onnx.ml opset 3) is in :mod:`boxwood.writers.onnx_legacy`;
-both share the preparation and post-transform parts built here.
+"""The graph pieces both ONNX writers share (boxwood.formats.onnx.exact, the ai.onnx.ml opset-5
+graph, and boxwood.formats.onnx.legacy, the float32 opset-3 graph): input preparation, the
+post-transform and label ops, metadata, assembly. What each piece computes and why it is
+exact is in :mod:`boxwood.formats.onnx.exact` and docs/onnx.md.
 """
 from __future__ import annotations
 
 import json
 import math
-from pathlib import Path
-from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
-from ..ir import LEAF, Ensemble, ModelError
+from ...ir import LEAF, Ensemble, ModelError
 
 ONNX_OPSET = 21
 ONNX_ML_OPSET = 5
@@ -78,7 +38,6 @@ MODE_MEMBER = 6
 CODE_OFFSET = 1.0
 # The lone member of a categorical split that sends no category left.
 NEVER_MEMBER = -1.0
-TRANSFORMS_SUPPORTED = ("identity", "exp", "logistic", "logistic_double", "softmax", "samme", "isolation")
 META_PREPROCESSING = "boxwood.preprocessing"
 # Names of the extra outputs of AdaBoost (samme) and isolation forest graphs.
 DECISION_NAME = "decision"
@@ -188,103 +147,6 @@ def _preorder(tree) -> List[int]:
     return order
 
 
-def tree_ensemble_node(kit: GraphKit, ensemble: Ensemble, x: str, output: str) -> int:
-    """Append the ai.onnx.ml TreeEnsemble (opset 5) node; return the number of leading
-    base-value trees written before the ensemble's own trees."""
-    onnx = kit.onnx
-    feat, split, mode, tnode, tleaf, fnode, fleaf, miss = [], [], [], [], [], [], [], []
-    members: List[float] = []
-    weights: List[float] = []
-    targets: List[int] = []
-    roots: List[int] = []
-
-    def leaf(value: float, target: int) -> int:
-        weights.append(float(value))
-        targets.append(target)
-        return len(weights) - 1
-
-    def single_leaf_tree(value: float, target: int) -> None:
-        # "a single nodes_* entry with true and false branches referencing the same leaf"
-        index = leaf(value, target)
-        roots.append(len(feat))
-        feat.append(0)
-        split.append(0.0)
-        mode.append(MODE_LEQ)
-        tnode.append(index)
-        tleaf.append(1)
-        fnode.append(index)
-        fleaf.append(1)
-        miss.append(0)
-
-    leading = 0
-    if ensemble.combine == "sum":
-        for k, base in enumerate(ensemble.base_values):
-            single_leaf_tree(base, k)
-            leading += 1
-    for tree in ensemble.trees:
-        if tree.feature[0] == LEAF:
-            single_leaf_tree(tree.value[0], tree.output)
-            continue
-        order = _preorder(tree)
-        position: Dict[int, Tuple[bool, int]] = {}
-        for node in order:
-            if tree.feature[node] == LEAF:
-                position[node] = (True, leaf(tree.value[node], tree.output))
-            else:
-                position[node] = (False, len(feat))
-                feat.append(tree.feature[node])
-                cats = tree.left_categories[node]
-                if cats is None:
-                    split.append(float(tree.threshold[node]))
-                    mode.append(MODE_LEQ)
-                else:
-                    split.append(0.0)
-                    mode.append(MODE_MEMBER)
-                    # onnxruntime refuses an empty set; NEVER_MEMBER matches no input
-                    # (inputs reach the trees as code + 1 >= 1, or NaN).
-                    members.extend([float(c) + CODE_OFFSET for c in cats] or [NEVER_MEMBER])
-                    members.append(math.nan)
-                miss.append(1 if tree.missing_left[node] else 0)
-                tnode.append(-1)
-                tleaf.append(0)
-                fnode.append(-1)
-                fleaf.append(0)
-        roots.append(position[0][1])
-        for node in order:
-            is_leaf, index = position[node]
-            if is_leaf:
-                continue
-            lk, li = position[tree.left[node]]
-            rk, ri = position[tree.right[node]]
-            tleaf[index], tnode[index] = int(lk), li
-            fleaf[index], fnode[index] = int(rk), ri
-    T = onnx.TensorProto
-    dt = kit.np_float
-    attrs: Dict[str, Any] = dict(
-        aggregate_function=1,  # SUM
-        post_transform=0,  # NONE: the post-transform is done by standard operators
-        n_targets=ensemble.n_outputs,
-        tree_roots=roots,
-        nodes_featureids=feat,
-        nodes_splits=onnx.numpy_helper.from_array(np.asarray(split, dtype=dt), "nodes_splits"),
-        nodes_modes=onnx.numpy_helper.from_array(np.asarray(mode, dtype=np.uint8), "nodes_modes"),
-        nodes_truenodeids=tnode,
-        nodes_trueleafs=tleaf,
-        nodes_falsenodeids=fnode,
-        nodes_falseleafs=fleaf,
-        nodes_missing_value_tracks_true=miss,
-        leaf_targetids=targets,
-        leaf_weights=onnx.numpy_helper.from_array(np.asarray(weights, dtype=dt), "leaf_weights"),
-    )
-    if members:
-        attrs["membership_values"] = onnx.numpy_helper.from_array(np.asarray(members, dtype=dt),
-                                                                  "membership_values")
-    assert kit.float_type == T.DOUBLE
-    kit.nodes.append(onnx.helper.make_node("TreeEnsemble", [x], [output], name=TREE_NODE_NAME,
-                                           domain="ai.onnx.ml", **attrs))
-    return leading
-
-
 def finish_mean(kit: GraphKit, ensemble: Ensemble, summed: str, output: str) -> str:
     """combine == "mean": raw = base + (sum of the output's trees) / (their count)."""
     counts = [0] * ensemble.n_outputs
@@ -310,14 +172,12 @@ def _label_tensor(classes: List[Any]) -> Tuple[np.ndarray, int]:
 
 
 def refuse_unsupported(ensemble: Ensemble) -> None:
-    """Raise ModelError for what the ONNX writers cannot state yet.
+    """Raise ModelError for what the ONNX writers cannot state (every post-transform of the hub is
+    written; ``Ensemble.check`` has refused unknown ones).
 
     A pipeline's preprocessing is not refused: the graph holds the tree part only and its
     input is the preprocessed feature vector (metadata ``boxwood.preprocessing`` says how
     each feature is computed from the raw fields; docs/onnx.md, "Pipelines")."""
-    if ensemble.post_transform not in TRANSFORMS_SUPPORTED:
-        raise ModelError("the ONNX writer does not support post_transform %r yet; supported: %s"
-                         % (ensemble.post_transform, ", ".join(TRANSFORMS_SUPPORTED)))
     if ensemble.post_transform == "isolation" and ensemble.post_transform_params["denominator"] == 0.0:
         raise ModelError("an isolation forest fitted on single-sample trees (denominator 0: scikit-learn sets "
                          "every score to -1) is not written to ONNX")
@@ -328,9 +188,6 @@ def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
     helper, T = kit.onnx.helper, kit.onnx.TensorProto
     k = ensemble.n_outputs
     post = ensemble.post_transform
-    if post not in TRANSFORMS_SUPPORTED:
-        raise ModelError("the ONNX writer does not support post_transform %r yet; supported: %s"
-                         % (post, ", ".join(TRANSFORMS_SUPPORTED)))
     raw_info = helper.make_tensor_value_info(RAW_NAME, kit.float_type, ["N", k])
     if ensemble.task == "regression":
         if post == "exp":
@@ -449,7 +306,7 @@ def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, varia
              extra: Optional[Dict[str, str]] = None) -> Dict[str, str]:
     """metadata_props: what the graph cannot say itself (names, categories, provenance,
     the source's reference rows) and a statement of the semantics written."""
-    from .. import __version__
+    from ... import __version__
 
     prov = ensemble.provenance or {}
     semantics = {
@@ -482,7 +339,10 @@ def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, varia
     if ensemble.fields is not None:
         meta[META_PREPROCESSING] = json.dumps(preprocessing_statement(ensemble), sort_keys=True, allow_nan=False)
         if ref is not None:
-            rows = preprocessed_rows(ensemble, ref.rows)
+            from ..json.device import feature_preparer
+
+            prepare = feature_preparer(ensemble)
+            rows = [prepare(row, i) for i, row in enumerate(ref.rows)]
     if ref is not None:
         meta[META_REFERENCE] = json.dumps({
             "rows": [[_json_number(v) for v in row] for row in rows],
@@ -503,46 +363,6 @@ def preprocessing_statement(ensemble: Ensemble) -> Dict[str, Any]:
         "fields": list(ensemble.fields or []),
         "features": [{"name": f.name, "source": f.source} for f in ensemble.features],
     }
-
-
-def preprocessed_rows(ensemble: Ensemble, rows: Sequence[Sequence[Any]]) -> List[List[Any]]:
-    """Raw-field records -> feature rows (numbers, category values, None), by the device
-    scorer's own preprocessing (boxwood_runtime.scorer.Model.prepare)."""
-    prepare = feature_preparer(ensemble)
-    return [prepare(row, i) for i, row in enumerate(rows)]
-
-
-def feature_preparer(ensemble: Ensemble) -> Any:
-    """A function (record, row index) -> the record's feature row, in the hub's row form
-    (a category value for a categorical feature, None when missing), computed by the
-    device scorer's preprocessing of ``ensemble`` (which must carry ``fields``)."""
-    from boxwood_runtime import scorer
-
-    from .json_artefact import to_document
-
-    bare = ensemble if ensemble.reference is None else _without_reference(ensemble)
-    model = scorer.Model(to_document(bare), dict(scorer.DEFAULT_LIMITS), unknown_category="as_missing")
-    feats = ensemble.features
-
-    def prepare(record: Sequence[Any], row: int = 0) -> List[Any]:
-        x = model.prepare(list(record), row)
-        out: List[Any] = []
-        for f, v in zip(feats, x):
-            if v != v:
-                out.append(None)
-            elif f.is_categorical:
-                out.append(f.categories[int(v)])
-            else:
-                out.append(float(v))
-        return out
-
-    return prepare
-
-
-def _without_reference(ensemble: Ensemble) -> Ensemble:
-    import dataclasses
-
-    return dataclasses.replace(ensemble, reference=None)
 
 
 def assemble(kit: GraphKit, ensemble: Ensemble, input_type: int, outputs: List[Any],
@@ -570,51 +390,3 @@ def _doc(ensemble: Ensemble) -> str:
             + (" The model's preprocessing is NOT in this graph: the input is the preprocessed feature "
                "vector (after imputation and encoding); metadata boxwood.preprocessing lists each feature's "
                "raw field and steps." if ensemble.fields is not None else ""))
-
-
-# ----------------------------------------------------------------------------- entry points
-def to_model(ensemble: Ensemble, input_type: str = "float64") -> Any:
-    """The ONNX ModelProto (ai.onnx.ml opset 5, float64 trees) for ``ensemble``."""
-    ensemble.check()
-    refuse_unsupported(ensemble)
-    if input_type not in INPUT_TYPES:
-        raise ValueError("input_type is %r; expected one of %s" % (input_type, ", ".join(INPUT_TYPES)))
-    onnx = _onnx()
-    T = onnx.TensorProto
-    kit = GraphKit(T.DOUBLE)
-    graph_input = T.DOUBLE if input_type == "float64" else T.FLOAT
-    x = prepare_input(kit, ensemble, INPUT_NAME, graph_input, ensemble.compare_precision == "float32")
-    if ensemble.combine == "sum":
-        leading = tree_ensemble_node(kit, ensemble, x, RAW_NAME)
-    else:
-        summed = kit.name("tree_sum")
-        leading = tree_ensemble_node(kit, ensemble, x, summed)
-        finish_mean(kit, ensemble, summed, RAW_NAME)
-    outputs = add_outputs(kit, ensemble, RAW_NAME)
-    meta = metadata(ensemble, leading, input_type, "exact")
-    return assemble(kit, ensemble, graph_input, outputs, meta,
-                    {"": ONNX_OPSET, "ai.onnx.ml": ONNX_ML_OPSET}, _doc(ensemble))
-
-
-def to_bytes(ensemble: Ensemble, input_type: Optional[str] = None, legacy: bool = False) -> bytes:
-    """The serialized ONNX model. ``input_type``: "float64" (default) or "float32";
-    ``legacy``: the float32 ai.onnx.ml opset-3 variant (float32 input only)."""
-    if legacy:
-        from .onnx_legacy import to_model as legacy_model
-
-        if input_type not in (None, "float32"):
-            raise ValueError("the legacy (ai.onnx.ml opset 3) graph takes float32 input only, not %r"
-                             % (input_type,))
-        return legacy_model(ensemble).SerializeToString()
-    return to_model(ensemble, input_type or "float64").SerializeToString()
-
-
-def write(ensemble: Ensemble, path: Union[str, Path], input_type: Optional[str] = None,
-          legacy: bool = False) -> int:
-    """Write the ONNX file (atomically: a temporary file, then rename); return its size."""
-    data = to_bytes(ensemble, input_type=input_type, legacy=legacy)
-    path = Path(path)
-    tmp = path.with_name(path.name + ".partial")
-    tmp.write_bytes(data)
-    tmp.replace(path)
-    return len(data)

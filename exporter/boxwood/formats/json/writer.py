@@ -15,7 +15,7 @@ from typing import Any, Dict, Union
 
 from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes
 
-from ..ir import Ensemble
+from ...ir import Ensemble
 
 FORMAT_VERSION = 1
 # CSV cells (after trimming spaces) that mean "missing"; JSON null and NaN do too.
@@ -112,7 +112,7 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
 
 def _provenance(p: Dict[str, Any]) -> Dict[str, Any]:
     """Provenance with the three parts the schema requires, for hand-built ensembles too."""
-    from .. import __version__
+    from ... import __version__
 
     versions = dict(p.get("versions") or {})
     versions.setdefault("boxwood", __version__)

@@ -1,6 +1,7 @@
 """Helpers shared by the readers: names, plain Python values, provenance."""
 from __future__ import annotations
 
+import math
 import platform
 from typing import Any, Dict, List
 
@@ -15,6 +16,11 @@ def feature_names(model: Any) -> List[str]:
     if names is not None:
         return [str(n) for n in names]
     return ["x%d" % i for i in range(int(model.n_features_in_))]
+
+
+def is_nan(v: Any) -> bool:
+    """True for a float NaN (scikit-learn's usual marker of a missing value)."""
+    return isinstance(v, float) and math.isnan(v)
 
 
 def plain(value: Any) -> Any:

@@ -24,36 +24,13 @@ device gets the same bits:
 """
 from __future__ import annotations
 
-from typing import Any, List, Optional, Sequence, Tuple
+from typing import Any, List, Optional
 
 import numpy as np
 
-from ..ir import LEAF, Ensemble, Feature, Tree
+from ..ir import Ensemble, Feature, Tree
 from .common import UnsupportedModel, feature_names, plain, provenance
-
-
-def _structure(tree: Any, feature_map: Optional[Sequence[int]] = None) -> Tuple[list, list, list, list, list]:
-    """Node arrays of a scikit-learn Tree: feature, threshold, left, right, missing_left."""
-    left = [int(c) for c in tree.children_left]
-    right = [int(c) for c in tree.children_right]
-    feature, threshold, missing = [], [], []
-    for i, f in enumerate(tree.feature):
-        if left[i] == LEAF:
-            feature.append(LEAF)
-            threshold.append(0.0)
-            missing.append(False)
-        else:
-            feature.append(int(feature_map[f]) if feature_map is not None else int(f))
-            threshold.append(float(tree.threshold[i]))
-            missing.append(bool(tree.missing_go_to_left[i]))
-    return feature, threshold, left, right, missing
-
-
-def _hub_tree(tree: Any, output: int, leaf_values: Sequence[float],
-              feature_map: Optional[Sequence[int]] = None) -> Tree:
-    feature, threshold, left, right, missing = _structure(tree, feature_map)
-    value = [float(leaf_values[i]) if left[i] == LEAF else 0.0 for i in range(len(left))]
-    return Tree(output, feature, threshold, left, right, missing, value)
+from .trees import classic_tree
 
 
 def _tree_proba(tree: Any, n_classes: int) -> np.ndarray:
@@ -86,8 +63,8 @@ def _trees_of(estimator: Any, model: Any, n_outputs: int, classifier: bool, n_cl
     t = estimator.tree_
     if classifier:
         proba = _tree_proba(t, n_classes)
-        return [_hub_tree(t, k, proba[:, k]) for k in range(n_classes)]
-    return [_hub_tree(t, k, t.value[:, k, 0]) for k in range(n_outputs)]
+        return [classic_tree(t, k, proba[:, k]) for k in range(n_classes)]
+    return [classic_tree(t, k, t.value[:, k, 0]) for k in range(n_outputs)]
 
 
 def read_tree_or_forest(model: Any) -> Ensemble:
@@ -144,7 +121,7 @@ def read_isolation_forest(model: Any) -> Ensemble:
         # decision_path_length[leaf] + average_path_length[leaf] - 1.0
         leaf_values = (model._decision_path_lengths[idx] + model._average_path_length_per_tree[idx] - 1.0)
         feature_map = [int(f) for f in feats] if model._max_features != n_features else None
-        trees.append(_hub_tree(est.tree_, 0, leaf_values, feature_map))
+        trees.append(classic_tree(est.tree_, 0, leaf_values, feature_map))
     denominator = len(model.estimators_) * _average_path_length(int(model._max_samples))
     params = {"n_estimators": len(model.estimators_), "max_samples": int(model._max_samples),
               "max_features": int(model._max_features), "contamination": plain(model.contamination)}
@@ -200,7 +177,7 @@ def read_adaboost(model: Any) -> Ensemble:
         votes = [list(model.classes_).index(c) for c in est.classes_[np.argmax(proba, axis=1)]]
         for out in range(k):
             values = [w if votes[i] == out else against for i in range(len(votes))]
-            trees.append(_hub_tree(est.tree_, out, values))
+            trees.append(classic_tree(est.tree_, out, values))
     weight_total = float(model.estimator_weights_.sum())
     params = {"n_estimators": len(model.estimators_), "learning_rate": float(model.learning_rate)}
     return Ensemble(

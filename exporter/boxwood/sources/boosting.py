@@ -12,13 +12,13 @@ silently different model.
 """
 from __future__ import annotations
 
-import math
 from typing import Any, List, Optional
 
 import numpy as np
 
 from ..ir import LEAF, Ensemble, Feature, Tree
-from .common import UnsupportedModel, feature_names, plain, provenance
+from .common import UnsupportedModel, feature_names, is_nan, plain, provenance
+from .trees import classic_tree
 
 GB_REGRESSION_LOSSES = ("squared_error", "absolute_error", "huber", "quantile")
 GB_CLASSIFICATION_LOSSES = ("log_loss", "exponential")
@@ -60,7 +60,10 @@ def read_gradient_boosting(model: Any) -> Ensemble:
     stages = model.estimators_
     for stage in range(stages.shape[0]):
         for k in range(stages.shape[1]):
-            trees.append(_classic_tree(stages[stage, k].tree_, k, lr))
+            tree = stages[stage, k].tree_
+            # predict_stages adds ``learning_rate * value`` in float64 at predict time;
+            # the same IEEE product formed here gives the same bits.
+            trees.append(classic_tree(tree, k, [lr * float(v) for v in tree.value[:, 0, 0]]))
 
     features = [Feature(n) for n in feature_names(model)]
     if classifier:
@@ -97,23 +100,6 @@ def read_gradient_boosting(model: Any) -> Ensemble:
     ).check()
 
 
-def _classic_tree(tree: Any, output: int, learning_rate: float) -> Tree:
-    """sklearn.tree._tree.Tree -> Tree, leaf values multiplied by the learning rate.
-
-    scikit-learn's predict_stages adds ``scale * value`` in float64 at predict time;
-    the same IEEE product formed here gives the same bits.
-    """
-    left = [int(c) for c in tree.children_left]
-    right = [int(c) for c in tree.children_right]
-    feature = [int(f) if left[i] != LEAF else LEAF for i, f in enumerate(tree.feature)]
-    threshold = [float(t) if left[i] != LEAF else 0.0 for i, t in enumerate(tree.threshold)]
-    value = [learning_rate * float(v) if left[i] == LEAF else 0.0 for i, v in enumerate(tree.value[:, 0, 0])]
-    # Missing values are refused before the trees run, so the direction is never used;
-    # record what scikit-learn stored for completeness.
-    missing = [bool(m) and left[i] != LEAF for i, m in enumerate(tree.missing_go_to_left)]
-    return Tree(output, feature, threshold, left, right, missing, value)
-
-
 # --------------------------------------------------------------------------- histogram
 def read_hist_gradient_boosting(model: Any) -> Ensemble:
     """HistGradientBoostingRegressor or HistGradientBoostingClassifier -> Ensemble."""
@@ -142,7 +128,7 @@ def read_hist_gradient_boosting(model: Any) -> Ensemble:
         encoder = model._preprocessor.named_transformers_["encoder"]
         for original, categories in zip(np.flatnonzero(is_cat), encoder.categories_):
             values = [plain(c) for c in categories]
-            if values and _is_nan(values[-1]):
+            if values and is_nan(values[-1]):
                 values = values[:-1]  # the encoder lists NaN last; it is the missing marker
             features[original] = Feature(names[original], "categorical", values)
 
@@ -213,10 +199,6 @@ def _hist_tree(predictor: Any, output: int, order: List[int]) -> Tree:
             cats.append(None)
             threshold.append(float(node["num_threshold"]))
     return Tree(output, feature, threshold, left, right, missing, value, cats)
-
-
-def _is_nan(v: Any) -> bool:
-    return isinstance(v, float) and math.isnan(v)
 
 
 def read(model: Any) -> Optional[Ensemble]:

@@ -1,18 +1,20 @@
-"""Front ends: each reader turns one family of fitted models into an :class:`~boxwood.ir.Ensemble`.
+"""Sources (front ends): each module turns one family of fitted scikit-learn models into an
+:class:`~boxwood.ir.Ensemble`; a source never writes files.
 
 To add an estimator, write a module here with a ``read(model)`` function that returns
 an Ensemble for the models it knows and None otherwise, add it to ``READERS`` and to
-``SUPPORTED``, and add it to the conformance suite in tests/.
+``SUPPORTED``, and add it to the conformance suite in tests/ (DEVELOPERS.md walks through it).
 """
 from __future__ import annotations
 
 from typing import Any
 
 from ..ir import Ensemble
-from . import sklearn_boosting, sklearn_forests, sklearn_pipeline
+from . import boosting, forests, pipeline
 from .common import UnsupportedModel
+from .loading import PICKLE_WARNING, ModelFileError, load_model_file
 
-READERS = (sklearn_boosting.read, sklearn_forests.read, sklearn_pipeline.read)
+READERS = (boosting.read, forests.read, pipeline.read)
 
 SUPPORTED = (
     "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
@@ -25,7 +27,7 @@ SUPPORTED = (
     "sklearn.tree.DecisionTreeClassifier / ExtraTreeClassifier (binary and multiclass)",
     "sklearn.ensemble.IsolationForest (score_samples, decision_function, predict)",
     "sklearn.ensemble.AdaBoostClassifier (SAMME, decision-tree base learners)",
-    "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(sklearn_pipeline.SUPPORTED_STEPS),
+    "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(pipeline.SUPPORTED_STEPS),
 )
 
 
@@ -45,8 +47,14 @@ def read_model(model: Any) -> Ensemble:
         if ensemble is not None:
             return ensemble
     raise UnsupportedModel(
-        "cannot export %s.%s; supported models:\n  - %s"
-        % (type(model).__module__, type(model).__name__, "\n  - ".join(SUPPORTED)))
+        "cannot export %s; supported models:\n  - %s" % (public_name(model), "\n  - ".join(SUPPORTED)))
 
 
-__all__ = ["read_model", "UnsupportedModel", "SUPPORTED"]
+def public_name(obj: Any) -> str:
+    """The name users import a class by (``sklearn.svm.SVC``), not its private module path."""
+    module = type(obj).__module__
+    parts = [p for p in module.split(".") if not p.startswith("_")]
+    return "%s.%s" % (".".join(parts) or module, type(obj).__name__)
+
+
+__all__ = ["read_model", "UnsupportedModel", "SUPPORTED", "load_model_file", "ModelFileError", "PICKLE_WARNING"]

@@ -1,0 +1,41 @@
+"""``boxwood bundle``: one folder to copy onto a box (boxwood.bundle.make_bundle)."""
+from ..sources import PICKLE_WARNING
+from .common import footprint_text, positive_int
+
+
+def add(commands):
+    p = commands.add_parser(
+        "bundle", help="make one folder to copy onto a box: artefact, scorer, entry script, manifest, README",
+        description="Make a folder holding the artefact, the standard-library scorer (scorer.py, "
+                    "stream.py), the entry script box.py (check / score / info on the box, CPython 3.8+ "
+                    "or MicroPython), a device README and manifest.json (sha256 and size of every file, "
+                    "versions, footprint). SOURCE is a boxwood artefact (.json) or a fitted model saved "
+                    "with joblib or pickle, exported on the way. WARNING: " + PICKLE_WARNING)
+    p.add_argument("source", metavar="SOURCE",
+                   help="boxwood artefact (.json), or a joblib/pickle model file (trusted files only: "
+                        "loading it runs code)")
+    p.add_argument("-o", "--output", required=True, metavar="DIR", help="bundle folder to create (new or empty)")
+    p.add_argument("--zip", action="store_true", help="also write DIR.zip (same bytes for the same bundle)")
+    p.add_argument("--micropython-footprint", choices=("auto", "require", "skip"), default="auto",
+                   help="measure the scorer's heap under MicroPython for the manifest: auto = when node and "
+                        "the MicroPython WebAssembly port are found (default), require = fail if not, skip")
+    p.add_argument("--micropython-port", metavar="DIR", help="folder of the port's micropython.mjs")
+    p.add_argument("--reference-rows", type=positive_int, default=6, metavar="N",
+                   help="self-check rows when SOURCE is a model file (default: %(default)s)")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    from ..bundle import make_bundle
+
+    manifest = make_bundle(args.source, args.output, zip_file=args.zip, measure=args.micropython_footprint,
+                           port=args.micropython_port, reference_rows=args.reference_rows)
+    foot = manifest["footprint"]
+    print("bundled %s into %s%s" % (args.source, args.output, " (and %s.zip)" % args.output if args.zip else ""))
+    for name, entry in sorted(manifest["files"].items()):
+        print("  %-12s %8d bytes  sha256 %s" % (name, entry["bytes"], entry["sha256"]))
+    print("  %-12s %s trees, %s nodes, deepest path %s splits" % ("model", foot["trees"], foot["nodes"],
+                                                                   foot["max_depth"]))
+    print("  %-12s %s" % ("footprint", footprint_text(foot)))
+    print("on the box:  python3 box.py check   (or: micropython box.py check)")
+    return 0

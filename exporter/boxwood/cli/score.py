@@ -1,0 +1,49 @@
+"""``boxwood score``: stream a CSV or JSON Lines file through an artefact with the device scorer."""
+import os
+import sys
+
+from .common import PROG, UsageError, load_artefact, text_input, text_output
+
+
+def add(commands):
+    p = commands.add_parser(
+        "score", help="score a CSV or JSON Lines stream with an artefact (one output row per input row)",
+        description="Score every row of INPUT with the artefact and write one output row per input "
+                    "row, in order: the id (if any), the outputs (regression: one column per output; "
+                    "classification: label and proba_<class> per class), and an error column. "
+                    "Rows that cannot be scored are written with the error; the exit code is then 2.")
+    p.add_argument("artefact", metavar="ARTEFACT", help="boxwood artefact (.json)")
+    p.add_argument("input", metavar="INPUT", nargs="?", default="-",
+                   help="CSV with a header row, or JSON Lines (default: stdin, also '-')")
+    p.add_argument("-o", "--output", metavar="OUTPUT", default="-", help="output file (default: stdout)")
+    p.add_argument("--format", choices=("auto", "csv", "jsonl"), default="auto",
+                   help="input format; auto: JSON Lines if the first non-blank character is '{', "
+                        "else CSV (default: %(default)s); the output has the same format")
+    p.add_argument("--id-column", metavar="NAME",
+                   help="column (JSON field) copied to the output to identify rows "
+                        "(default: a column named 'id' when present)")
+    p.add_argument("--unknown-category", choices=("error", "as_missing"), default="error",
+                   help="a category the model never saw: an error row, or treated as missing "
+                        "as scikit-learn does (default: %(default)s)")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    from boxwood_runtime.stream import score_stream
+
+    model = load_artefact(args.artefact, unknown_category=args.unknown_category)
+    if args.input != "-" and not os.path.isfile(args.input):
+        raise UsageError("input file %r not found (or not a file)" % args.input)
+    if ("-" not in (args.input, args.output) and os.path.exists(args.output)
+            and os.path.samefile(args.input, args.output)):
+        raise UsageError("the output %r is the input file; write to another file" % args.output)
+    try:
+        with text_input(args.input) as src, text_output(args.output) as dst:
+            counts = score_stream(model, src, dst, fmt=args.format, id_column=args.id_column)
+    except UnicodeDecodeError as exc:
+        raise UsageError("the input is not UTF-8 text: %s" % exc)
+    if counts.errors:
+        print("%s: scored %d rows, %d errors (first: %s)" % (PROG, counts.rows, counts.errors,
+                                                              counts.first_error), file=sys.stderr)
+        return 2
+    return 0

@@ -1,0 +1,62 @@
+"""``boxwood verify``: prove that artefacts compute what the source model computes (boxwood.verify)."""
+import os
+
+from ..sources import PICKLE_WARNING
+from .common import UsageError, tolerance
+
+
+def add(commands):
+    from ..verify.probes import DEFAULT_PROBE_ROWS
+
+    p = commands.add_parser(
+        "verify", help="prove that artefacts compute what the source model computes (CI-ready reports; "
+                       "loading a pickle runs code: trusted files only)",
+        description="Compare the fitted source model with each ARTEFACT: an exact structural proof over "
+                    "every input (tree by tree, node by node, with a certified bound on the difference of "
+                    "raw scores and outputs) and an empirical check on the --data rows and generated "
+                    "probes (split thresholds and their neighbouring floats, NaN, unseen categories, "
+                    "extremes, random rows), for every evaluator of the artefact. Exit 0 when every check "
+                    "passes, 1 when one fails, 2 on bad usage or input. WARNING: " + PICKLE_WARNING)
+    p.add_argument("model", metavar="MODEL",
+                   help="joblib or pickle file of the fitted source model (trusted files only: loading it "
+                        "runs code)")
+    p.add_argument("artefacts", metavar="ARTEFACT", nargs="+", help="artefact file(s) to verify (.json)")
+    p.add_argument("--data", metavar="FILE",
+                   help="rows to compare on besides the generated probes: CSV with a header row or JSON "
+                        "Lines, read as 'boxwood score' reads them")
+    p.add_argument("--abs-tol", type=tolerance, metavar="A",
+                   help="absolute tolerance for every output kind (default: per kind, 0 for raw scores)")
+    p.add_argument("--rel-tol", type=tolerance, metavar="R",
+                   help="relative tolerance for every output kind (default: per kind, 0 for raw scores, "
+                        "a few ulps for probabilities and exp outputs); a difference passes when "
+                        "|a - s| <= max(A, R |s|)")
+    p.add_argument("--report-json", metavar="F", help="write the JSON report (schemas/verify-report.schema.json)")
+    p.add_argument("--junit", metavar="F", help="write JUnit XML (one test case per check and evaluator)")
+    p.add_argument("--probes", type=int, default=DEFAULT_PROBE_ROWS, metavar="N",
+                   help="most generated probe rows, 0 for none (default: %(default)s)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the random rows (default: 0)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar; print only the verdict line")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    from ..verify import verify
+
+    if not os.path.isfile(args.model):
+        raise UsageError("model file %r not found" % args.model)
+    for path in args.artefacts:
+        if not os.path.isfile(path):
+            raise UsageError("artefact file %r not found" % path)
+    if args.data is not None and not os.path.isfile(args.data):
+        raise UsageError("data file %r not found" % args.data)
+    if args.probes < 0:
+        raise UsageError("--probes must be 0 or more, got %d" % args.probes)
+    result = verify(args.model, args.artefacts, data=args.data, abs_tol=args.abs_tol, rel_tol=args.rel_tol,
+                    probes=args.probes, seed=args.seed, progress=False if args.quiet else None)
+    if args.report_json:
+        result.write_json(args.report_json)
+    if args.junit:
+        result.write_junit(args.junit)
+    text = result.summary()
+    print(text.splitlines()[0] if args.quiet else text)
+    return 0 if result.passed else 1

@@ -1,0 +1,221 @@
+"""The output contract: how raw scores become exact values, outputs and labels, and what an
+evaluator promises. Written once here for the workstation side.
+
+**From raw scores to what users see.** An ensemble's raw scores (one float64 per output:
+``base value + leaves``, or their mean) become, by the ensemble's post-transform:
+
+* *exact values*: what a device must reproduce bit for bit. The raw scores themselves,
+  except for AdaBoost (``samme``), whose raw vote sums scikit-learn never shows: there
+  they are its decision values ``raw / weight_total`` (two classes: ``-d0 + d1``);
+* *decision values* (``decision_function``): the raw scores; AdaBoost as above; an
+  isolation forest's ``score_samples - offset``;
+* *transformed outputs*: the prediction, the class probabilities (for a binary
+  classifier with one raw output, the positive class only), or an isolation forest's
+  ``score_samples``;
+* *labels*: the class of the largest decision value (first of equal maxima); a binary
+  classifier with one raw output by its ``binary_rule``; an outlier detector -1 where
+  its decision value is below 0, else 1.
+
+The device side keeps two standalone copies of this contract, because it cannot import
+the workstation: ``boxwood_runtime.scorer`` (pure Python, one record) and
+``boxwood_runtime.batch`` (numpy). tests/test_contract.py holds all three together on
+every task, constant by constant and value by value.
+
+**Evaluators.** Anything that computes a model's outputs (the source model, the device
+scorer, onnxruntime, a C build) is an object with:
+
+* ``name`` (str) - shown in reports, e.g. "device scorer";
+* ``evaluate(rows) -> Outputs(raw, transformed, labels)`` - exact values (n, n_exact),
+  transformed outputs (n, n_transformed), labels (a list) or None for a regressor. Rows
+  hold what a record holds: the features in order (numbers, category values, None for
+  missing), or the raw fields of a pipeline. A row it refuses raises ``ValueError``;
+* for the structural proof, what it does with numbers: ``input_precision`` ("float64",
+  or "float32" when it takes float32 inputs), ``compare_precision`` (None: as the
+  artefact states), ``summation_order`` ("tree": base value, then each tree in order;
+  "any": another order) and ``summation_precision`` ("float64"/"float32").
+
+Subclass :class:`Evaluator` for defaults; :func:`check_evaluator` validates a plug-in.
+"""
+from __future__ import annotations
+
+from typing import Any, Dict, List, NamedTuple, Optional, Sequence
+
+import numpy as np
+
+from .ir import PER_CLASS_TRANSFORMS, Ensemble
+
+PRECISIONS = ("float64", "float32")
+SUMMATION_ORDERS = ("tree", "any")
+
+
+class Outputs(NamedTuple):
+    """What an evaluator returns for a block of rows."""
+
+    raw: np.ndarray  # (n, n_exact) float64: the values a device reproduces bit for bit
+    transformed: np.ndarray  # (n, n_transformed) float64
+    labels: Optional[List[Any]]  # predicted labels (classes, or -1/1 for outliers); None for regressors
+
+
+class Evaluator:
+    """Base class of evaluators (see the module docstring for the contract)."""
+
+    name = "evaluator"
+    input_precision = "float64"
+    compare_precision: Optional[str] = None
+    summation_order = "tree"
+    summation_precision = "float64"
+    # A short description of how the post-transform is computed (reports only).
+    transform_implementation = "unspecified"
+    # Rows handed to evaluate() at once (the verifier's progress bar moves once per block).
+    block_rows = 1024
+
+    def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
+        raise NotImplementedError
+
+    def properties(self) -> Dict[str, Any]:
+        """What the structural proof and the report need to know about this evaluator."""
+        return {
+            "input_precision": self.input_precision,
+            "compare_precision": self.compare_precision,
+            "summation_order": self.summation_order,
+            "summation_precision": self.summation_precision,
+            "transform_implementation": self.transform_implementation,
+        }
+
+
+def check_evaluator(ev: Any) -> None:
+    """Raise ValueError unless ``ev`` states valid properties (plug-ins are checked on use)."""
+    name = getattr(ev, "name", None)
+    if not isinstance(name, str) or not name:
+        raise ValueError("an evaluator needs a non-empty name, got %r" % (name,))
+    if not callable(getattr(ev, "evaluate", None)):
+        raise ValueError("evaluator %r has no evaluate(rows) method" % name)
+    for attr, allowed in (("input_precision", PRECISIONS), ("summation_order", SUMMATION_ORDERS),
+                          ("summation_precision", PRECISIONS), ("compare_precision", PRECISIONS + (None,))):
+        value = getattr(ev, attr, None)
+        if value not in allowed:
+            raise ValueError("evaluator %r: %s is %r; expected one of %s"
+                             % (name, attr, value, ", ".join(map(repr, allowed))))
+
+
+class OutputContract:
+    """The contract for one ensemble: raw scores (n, n_outputs) in, everything else out."""
+
+    def __init__(self, ensemble: Ensemble):
+        self.task = ensemble.task
+        self.post_transform = ensemble.post_transform
+        self.params = dict(ensemble.post_transform_params or {})
+        self.n_outputs = ensemble.n_outputs
+        self.classes = list(ensemble.classes) if ensemble.classes is not None else None
+        self.binary_rule = ensemble.binary_rule
+
+    # -- widths --------------------------------------------------------------------
+    @property
+    def n_exact(self) -> int:
+        """Exact values per row."""
+        return 1 if (self.post_transform == "samme" and self.n_outputs == 2) else self.n_outputs
+
+    @property
+    def n_transformed(self) -> int:
+        """Transformed outputs per row."""
+        return self.n_outputs
+
+    @property
+    def one_score_binary(self) -> bool:
+        """A binary classifier with one raw output (its probability column is the positive class)."""
+        return self.task == "classification" and self.post_transform not in PER_CLASS_TRANSFORMS
+
+    # -- values --------------------------------------------------------------------
+    def exact_values(self, raw: np.ndarray) -> np.ndarray:
+        raw = _matrix(raw)
+        if self.post_transform == "samme":
+            return samme_decision(raw, self.params["weight_total"])
+        return raw
+
+    def decision_values(self, raw: np.ndarray) -> np.ndarray:
+        raw = _matrix(raw)
+        if self.post_transform == "samme":
+            return samme_decision(raw, self.params["weight_total"])
+        if self.post_transform == "isolation":
+            return self.transformed(raw) - self.params["offset"]
+        return raw
+
+    def transformed(self, raw: np.ndarray) -> np.ndarray:
+        return transform(self.post_transform, _matrix(raw), self.params)
+
+    def positive_class(self, probabilities: np.ndarray) -> np.ndarray:
+        """Class probabilities (n, n_classes) as transformed outputs: a one-score binary
+        classifier keeps the positive class's column only."""
+        p = _matrix(probabilities)
+        return p[:, 1:] if self.one_score_binary and p.shape[1] == 2 else p
+
+    def label_index(self, raw: np.ndarray) -> np.ndarray:
+        """Index into ``classes`` of the predicted label, per row."""
+        raw = _matrix(raw)
+        if self.task == "outlier_detection":  # scikit-learn: -1 where the decision is < 0
+            return (self.decision_values(raw)[:, 0] >= 0.0).astype(np.intp)
+        if raw.shape[1] == 1:
+            positive = raw[:, 0] > 0.0 if self.binary_rule == "raw_gt_0" else raw[:, 0] >= 0.0
+            return positive.astype(np.intp)
+        d = self.decision_values(raw)
+        if d.shape[1] == 1:  # AdaBoost, two classes: decision > 0 means the second
+            return (d[:, 0] > 0.0).astype(np.intp)
+        return np.argmax(d, axis=1)  # the first of equal maxima
+
+    def labels(self, raw: np.ndarray) -> Optional[List[Any]]:
+        """Predicted labels, or None for a regressor."""
+        if self.task == "regression":
+            return None
+        return [self.classes[i] for i in self.label_index(raw).tolist()]
+
+    def outputs(self, raw: np.ndarray) -> Outputs:
+        """Everything an evaluator returns, from raw scores."""
+        raw = _matrix(raw)
+        return Outputs(self.exact_values(raw), self.transformed(raw), self.labels(raw))
+
+
+def _matrix(a: Any) -> np.ndarray:
+    a = np.asarray(a, dtype=np.float64)
+    return a.reshape(len(a), -1) if a.ndim != 2 else a
+
+
+def samme_decision(raw: np.ndarray, weight_total: float) -> np.ndarray:
+    """AdaBoost (SAMME) decision values from the summed class votes, in scikit-learn's
+    order of operations: divide by the total weight; for two classes, -d0 + d1."""
+    d = _matrix(raw) / weight_total
+    return (-d[:, 0] + d[:, 1])[:, None] if d.shape[1] == 2 else d
+
+
+def softmax(z: np.ndarray) -> np.ndarray:
+    """Softmax per row: shift by the row maximum, exp, add left to right, divide."""
+    e = np.exp(z - z.max(axis=1, keepdims=True))
+    total = e[:, 0].copy()
+    for k in range(1, e.shape[1]):
+        total += e[:, k]
+    return e / total[:, None]
+
+
+def transform(name: str, raw: np.ndarray, params: Optional[Dict[str, float]] = None) -> np.ndarray:
+    """Apply the post-transform ``name`` to raw scores (n, K); return a new array."""
+    raw = _matrix(raw)
+    with np.errstate(over="ignore"):
+        if name == "identity":
+            return raw.copy()
+        if name == "exp":
+            return np.exp(raw)
+        if name == "logistic":  # 1 / (1 + e^-v), as scipy.special.expit
+            return 1.0 / (1.0 + np.exp(-raw))
+        if name == "logistic_double":  # the exponential loss: logistic(2 v)
+            return 1.0 / (1.0 + np.exp(-(2.0 * raw)))
+        if name == "softmax":
+            return softmax(raw)
+        if name == "samme":  # softmax of the decision scaled by 1 / (K - 1)
+            d = samme_decision(raw, params["weight_total"])
+            if d.shape[1] == 1:
+                return softmax(np.column_stack([-d[:, 0] / 2, d[:, 0] / 2]))
+            return softmax(d / (d.shape[1] - 1))
+        if name == "isolation":  # score_samples: -(2 ** -(path length sum / denominator))
+            den = params["denominator"]
+            q = raw / den if den != 0.0 else np.ones_like(raw)
+            return -(2 ** (-q))
+    raise ValueError("unknown post_transform %r" % (name,))
