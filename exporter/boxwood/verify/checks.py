@@ -75,6 +75,23 @@ def self_check(a: Artefact) -> List[Check]:
                   [] if ok else ["a device loading this artefact with the default settings refuses it: " + message])]
 
 
+# ----------------------------------------------------------------------------- data reading
+def data_reading_check(a: Artefact, reading: Any) -> List[Check]:
+    """``data reading``: the box reads the user's data file as the workstation does (pandas),
+    row by row and field by field. Absent when the data were Python values (one reading)."""
+    if reading is None:
+        return []
+    if reading.differences:
+        return [Check("data reading", a.path, None, "fail",
+                      "%d of %d data rows read differently by the box and by %s" % (
+                          reading.rows_differing, reading.rows, reading.workstation),
+                      list(reading.differences))]
+    if not reading.rows:
+        return [Check("data reading", a.path, None, "skip", "the data file %s holds no rows" % reading.file)]
+    return [Check("data reading", a.path, None, "pass",
+                  "%d data rows: the box's reading equals %s, field by field" % (reading.rows, reading.workstation))]
+
+
 # ----------------------------------------------------------------------------- structure
 def prove_bounds(a: Artefact, ev: Any, source: Ensemble, source_ev: Any,
                  cache: Dict[Tuple[Any, ...], ProvenBounds]) -> ProvenBounds:
@@ -293,8 +310,9 @@ def verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: Any, sou
 
 def verify_artefact(a: Artefact, source: Ensemble, source_ev: Any, source_runs: SourceRuns, origins: List[str],
                     tol: Dict[str, Dict[str, Any]], cache: Dict[Tuple[Any, ...], ProvenBounds], run: Any,
-                    phase: Any) -> ArtefactReport:
+                    phase: Any, reading: Any = None) -> ArtefactReport:
     evs = [verify_evaluator(a, ev, source, source_ev, source_runs, origins, tol, cache, run, phase)
            for ev in a.evaluators]
     info = None if a.self_check is None else {"ok": bool(a.self_check[0]), "message": a.self_check[1]}
-    return ArtefactReport(a.path, a.format, a.digest, info, self_check(a), evs, list(a.notes))
+    return ArtefactReport(a.path, a.format, a.digest, info, self_check(a) + data_reading_check(a, reading), evs,
+                          list(a.notes))

@@ -184,21 +184,26 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     try:
         bar.phase("source model")
         source_runs: Dict[str, Tuple[List[List[Any]], List[int], Outputs, List[Tuple[int, str]]]] = {}
-        src_out, src_refused = _run(source_ev, all_rows, widths, bar)
+        # The source model reads the user's data file as the workstation does (pandas);
+        # the artefacts read it as the box does. Probes are the same rows for both.
+        source_rows = rows.for_source()
+        src_out, src_refused = _run(source_ev, source_rows, widths, bar)
         source_runs["float64"] = (all_rows, list(range(len(all_rows))), src_out, src_refused)
         if src_refused:
             notes.append("the source model refused %d rows (they are left out); first: row %d (%s): %s"
                          % (len(src_refused), src_refused[0][0], rows.origins[src_refused[0][0]], src_refused[0][1]))
         if need32:
             r32, kept = probes_mod.round_rows_float32(all_rows, source)
-            out32, ref32 = _run(source_ev, r32, widths, bar)
+            s32 = probes_mod.round_rows_float32([source_rows[i] for i in kept], source, keep_all=True)[0]
+            out32, ref32 = _run(source_ev, s32, widths, bar)
             source_runs["float32"] = (r32, kept, out32, ref32)
         cache: Dict[Tuple[Any, ...], Any] = {}
 
         def run(ev: Any, block_rows: List[List[Any]]) -> Tuple[Outputs, List[Tuple[int, str]]]:
             return _run(ev, block_rows, widths, bar)
 
-        reports = [verify_artefact(a, source, source_ev, source_runs, rows.origins, tol, cache, run, bar.phase)
+        reports = [verify_artefact(a, source, source_ev, source_runs, rows.origins, tol, cache, run, bar.phase,
+                                   rows.reading)
                    for a in opened]
     finally:
         bar.close()
