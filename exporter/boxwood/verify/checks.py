@@ -27,6 +27,7 @@ from .report import ArtefactReport, Check, EvaluatorReport
 from .findings import OutputBound, Side
 from .structure import prove
 
+NOTHING_COMPARED = "not run: no rows were compared (no --data rows, --probes 0, or every row left out)"
 # The source model's outputs per input precision: (rows, kept row indices, outputs, refused rows).
 SourceRuns = Dict[str, Tuple[List[List[Any]], List[int], Outputs, List[Tuple[int, str]]]]
 
@@ -223,7 +224,10 @@ def empirical_checks(a: Artefact, ev: Any, pb: ProvenBounds, me: Measured) -> Li
             sum(m.over for m in ms))
         if kind == "raw" and me.refused:
             summary += "; %d refused" % len(me.refused)
-        checks.append(Check("empirical: %s" % kind, a.path, ev.name, "fail" if details else "pass", summary, details,
+        status = "fail" if details else "pass"
+        if not len(me.idx) and not details:  # nothing compared is not a pass
+            status, summary = "skip", NOTHING_COMPARED
+        checks.append(Check("empirical: %s" % kind, a.path, ev.name, status, summary, details,
                             me.seconds if kind == "raw" else 0.0))
     return checks
 
@@ -233,6 +237,8 @@ def decisions_check(a: Artefact, ev: Any, source: Ensemble, me: Measured) -> Tup
     if source.task == "regression":
         return Check("empirical: decisions", a.path, ev.name, "skip", "regression: no decisions to compare"), None
     idx = me.idx
+    if not len(idx):
+        return Check("empirical: decisions", a.path, ev.name, "skip", NOTHING_COMPARED), None
     s_lab = [me.source.labels[i] for i in idx]
     a_lab = [me.got.labels[i] for i in idx]
     rule = source.binary_rule if (source.n_outputs == 1 and source.task == "classification") else None
@@ -257,6 +263,8 @@ def bound_holds_check(a: Artefact, ev: Any, pb: ProvenBounds, me: Measured) -> C
                 broken.append("output %s %s: observed abs %r / rel %r, certified abs %r / rel %r (row %s, %s)" % (
                     vb.name, kind, m.max_abs, m.max_rel, vb.abs, vb.rel, m.worst_row,
                     me.origins[m.worst_row] if m.worst_row is not None else "-"))
+    if not broken and not len(me.idx):
+        return Check("bound holds", a.path, ev.name, "skip", NOTHING_COMPARED)
     if broken:
         broken.append("the certified bound's assumptions do not hold here (e.g. exp less accurate than assumed) "
                       "or boxwood has a bug: please report it")

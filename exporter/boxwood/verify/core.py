@@ -17,7 +17,7 @@ from ..sources.model import SourceEvaluator
 from . import bounds
 from . import probes as probes_mod  # the parameter ``probes`` of verify() shadows the name
 from .checks import verify_artefact, zero_bound
-from .report import VerifyResult
+from .report import ArtefactReport, Check, VerifyResult
 
 CHUNK_ROWS = 1024
 PathLike = Union[str, Path]
@@ -118,7 +118,8 @@ def _run(ev: Any, rows: List[List[Any]], widths: Tuple[int, int], bar: _Progress
 def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike]], data: Any = None,
            abs_tol: Optional[float] = None, rel_tol: Optional[float] = None,
            probes: int = probes_mod.DEFAULT_PROBE_ROWS, seed: int = 0, progress: Optional[bool] = None,
-           tolerances: Optional[Dict[str, Tuple[float, float]]] = None) -> VerifyResult:
+           tolerances: Optional[Dict[str, Tuple[float, float]]] = None,
+           bad_artefacts: str = "raise") -> VerifyResult:
     """Prove that each artefact computes what the source model computes; return a VerifyResult.
 
     ``model_or_path``: the fitted estimator, or a joblib/pickle file of it. Loading a
@@ -131,6 +132,9 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     for every output kind, ``tolerances={"raw": (a, r), "transformed": (a, r)}`` sets one
     kind. ``probes``: the most generated probe rows (0: none). ``seed``: for the random
     rows. ``progress``: a progress bar on stderr (None: only on a terminal).
+    ``bad_artefacts``: "raise" (an artefact that cannot be opened raises ValueError/OSError)
+    or "report" (it becomes a failing ``open`` check with the reason, the others are
+    verified, and ``result.error`` is set: what ``boxwood verify`` does, exit code 2).
 
     Raises ValueError / OSError for bad input (an unreadable model, artefact or data file,
     an unsupported model); a parity failure is a result with ``passed`` False, not an error.
@@ -142,7 +146,21 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     paths = [artefact_paths] if isinstance(artefact_paths, (str, Path)) else list(artefact_paths)
     if not paths:
         raise ValueError("give at least one artefact to verify")
-    opened: List[Artefact] = [open_artefact(p) for p in paths]
+    if bad_artefacts not in ("raise", "report"):
+        raise ValueError("bad_artefacts must be 'raise' or 'report', got %r" % (bad_artefacts,))
+    opened: List[Artefact] = []
+    unopened: List[ArtefactReport] = []
+    for p in paths:
+        try:
+            opened.append(open_artefact(p))
+        except (ValueError, OSError) as exc:
+            if bad_artefacts == "raise":
+                raise
+            message = str(exc) or type(exc).__name__
+            if str(p) not in message:
+                message = "%s: %s" % (p, message)
+            unopened.append(ArtefactReport(str(p), "not opened", None, None, [
+                Check("open", str(p), None, "fail", "cannot open the artefact: " + message, [message])], []))
     if getattr(source, "fields", None) is not None:
         # An artefact holding a pipeline's tree part only (boxwood's ONNX graphs) takes the
         # preprocessed features: evaluators that can, prepare the raw-field rows with the
@@ -208,6 +226,7 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     finally:
         bar.close()
     counts = rows.counts()
+    reports = reports + unopened
     result = VerifyResult(
         model={"label": label, "path": model_path, "estimator": source.provenance.get("estimator"),
                "task": source.task, "trees": len(source.trees), "nodes": source.n_nodes,
@@ -221,6 +240,8 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
                   (None if data is None else type(data).__name__)},
         notes=notes,
     )
+    if unopened:
+        result.error = {"message": "; ".join(a.checks[0].details[0] for a in unopened), "exit_code": 2}
     result.seconds = time.perf_counter() - t0
     return result
 
