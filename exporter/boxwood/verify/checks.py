@@ -66,6 +66,35 @@ class Measured:
     seconds: float
 
 
+# ----------------------------------------------------------------------------- tolerances
+@dataclass
+class Tolerances:
+    """Per kind ("raw", "transformed"), one (abs, rel) per compared value, and where they come from."""
+
+    per_value: Dict[str, List[Tuple[float, float]]]
+    origin: str = "run"  # "run": the run's tolerances; "stated": the artefact's own stated bound
+
+
+def tolerances_for(a: Artefact, source: Ensemble, pb: ProvenBounds, tol: Dict[str, Dict[str, Any]]) -> Tolerances:
+    """The run's tolerances for every value, except for an artefact that states its own raw
+    error bound (a float32 ONNX graph) while the caller gave none: that file is held to what
+    it states - the stated raw bound per output, and that bound carried through the
+    post-transform (:func:`bounds.value_bounds`) for the transformed outputs."""
+    run = {kind: [(tol[kind]["abs"], tol[kind]["rel"])] * len(vbs)
+           for kind, vbs in (("raw", pb.exact), ("transformed", pb.transformed))}
+    stated = a.stated_raw_bound
+    if (not stated or len(stated) != source.n_outputs or tol["raw"]["origin"] == "given"
+            or not pb.proof.comparable):
+        return Tolerances(run)
+    carried = [OutputBound(o.output, o.name, False, float(b), 0.0, 0.0, 0.0, [], o.source_range, o.artefact_range)
+               for o, b in zip(pb.proof.outputs, stated)]
+    exact_t, trans_t, _ = bounds.value_bounds(source, carried)
+    per = {"raw": [(v.abs, 0.0) for v in exact_t],
+           "transformed": [(max(v.abs, t[0]), max(v.rel, t[1])) if tol["transformed"]["origin"] != "given" else t
+                           for v, t in zip(trans_t, run["transformed"])]}
+    return Tolerances(per, "stated")
+
+
 # ----------------------------------------------------------------------------- self-check
 def self_check(a: Artefact) -> List[Check]:
     if a.self_check is None:
@@ -135,22 +164,22 @@ def structure_check(a: Artefact, ev: Any, pb: ProvenBounds) -> Check:
     return Check("structure", a.path, ev.name, "fail" if n_fail else "pass", summary, details, pb.seconds)
 
 
-def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tol: Dict[str, Dict[str, Any]]
-                 ) -> List[Check]:
+def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tols: Tolerances) -> List[Check]:
     """``bound: raw`` and ``bound: transformed``: the certified bound within the tolerance."""
     proof = pb.proof
     raw_bound = max((o.raw_abs for o in proof.outputs), default=0.0)
     checks = []
     for kind, vbs in (("raw", pb.exact), ("transformed", pb.transformed)):
-        tk = tol[kind]
         bad, parts = [], []
-        for vb in vbs:
+        for vb, (t_abs, t_rel) in zip(vbs, tols.per_value[kind]):
             parts.append("%s: %s" % (vb.name, "exact" if (vb.exact and kind == "raw") else
                                      "abs %s, rel %s" % (fmt_bound(vb.abs), fmt_bound(vb.rel))))
-            if bounds.within(vb.abs, vb.rel, tk["abs"], tk["rel"]):
+            if bounds.within(vb.abs, vb.rel, t_abs, t_rel):
                 continue
-            line = ("output %s: certified bound abs %s / rel %s exceeds the tolerance (abs %s, rel %s)"
-                    % (vb.name, fmt_bound(vb.abs), fmt_bound(vb.rel), fmt_bound(tk["abs"]), fmt_bound(tk["rel"])))
+            line = ("output %s: certified bound abs %s / rel %s exceeds the %s (abs %s, rel %s)"
+                    % (vb.name, fmt_bound(vb.abs), fmt_bound(vb.rel),
+                       "bound the file states" if tols.origin == "stated" else "tolerance",
+                       fmt_bound(t_abs), fmt_bound(t_rel)))
             if kind == "raw":
                 o = next((o for o in proof.outputs if o.name == vb.name), None)
                 if o is not None:
@@ -163,6 +192,9 @@ def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tol: 
                 line += "; from raw bounds up to %s through %s" % (fmt_bound(raw_bound), source.post_transform)
             bad.append(line)
         summary = "; ".join(parts[:3]) + ("; ..." if len(parts) > 3 else "")
+        if tols.origin == "stated":
+            summary += " (held to the raw error bound the file states%s)" % (
+                "" if kind == "raw" else ", carried through %s" % source.post_transform)
         extra = [proof.decisions] if (kind == "raw" and bad and proof.decisions) else []
         checks.append(Check("bound: %s" % kind, a.path, ev.name, "fail" if bad else "pass", summary, bad + extra))
     return checks
@@ -170,7 +202,7 @@ def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tol: 
 
 # ----------------------------------------------------------------------------- empirical
 def measure(ev: Any, pb: ProvenBounds, source_runs: SourceRuns, all_origins: List[str],
-            tol: Dict[str, Dict[str, Any]], run: Any) -> Measured:
+            tols: Tolerances, run: Any) -> Measured:
     """Run ``ev`` on the rows of its input precision (``run(ev, rows)`` -> (outputs,
     refused rows)) and measure every value against the source's."""
     t = time.perf_counter()
@@ -189,7 +221,8 @@ def measure(ev: Any, pb: ProvenBounds, source_runs: SourceRuns, all_origins: Lis
     for kind, vbs, s_arr, a_arr in (("raw", pb.exact, src_out.raw, got.raw),
                                     ("transformed", pb.transformed, src_out.transformed, got.transformed)):
         for j, _ in enumerate(vbs):
-            m = empirical.measure(s_arr[idx, j], a_arr[idx, j], tol[kind]["abs"], tol[kind]["rel"])
+            t_abs, t_rel = tols.per_value[kind][j]
+            m = empirical.measure(s_arr[idx, j], a_arr[idx, j], t_abs, t_rel)
             m.worst_row = None if m.worst_row is None else int(idx[m.worst_row])
             m.examples = [int(idx[r]) for r in m.examples]
             per_value[kind].append(m)
@@ -284,9 +317,10 @@ def verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: Any, sou
              "effective_compare_precision": ev.compare_precision or a.ensemble.compare_precision}
     phase("structure (%s)" % ev.name)
     pb = prove_bounds(a, ev, source, source_ev, cache)
-    checks = [structure_check(a, ev, pb)] + bound_checks(a, ev, source, pb, tol)
+    tols = tolerances_for(a, source, pb, tol)
+    checks = [structure_check(a, ev, pb)] + bound_checks(a, ev, source, pb, tols)
     phase(ev.name)
-    me = measure(ev, pb, source_runs, origins, tol, run)
+    me = measure(ev, pb, source_runs, origins, tols, run)
     checks += empirical_checks(a, ev, pb, me)
     decision, dec = decisions_check(a, ev, source, me)
     checks += [decision, bound_holds_check(a, ev, pb, me)]
@@ -306,6 +340,9 @@ def verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: Any, sou
              "outputs": [o.to_dict() for o in proof.outputs],
              "exact_values": [v.to_dict() for v in pb.exact],
              "transformed": [v.to_dict() for v in pb.transformed]}
+    if tols.origin == "stated":
+        props["tolerance"] = ("the raw error bound the file states, per output: %s"
+                              % ", ".join("%.3g" % t[0] for t in tols.per_value["raw"]))
     emp = {"rows": int(len(me.idx)),
            "refused": {"count": len(me.refused),
                        "examples": [{"row": i, "origin": me.origins[i], "message": m} for i, m in me.refused[:5]]},
