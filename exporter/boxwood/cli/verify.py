@@ -1,8 +1,9 @@
 """``boxwood verify``: prove that artefacts compute what the source model computes (boxwood.verify)."""
 import os
+import sys
 
 from ..sources import PICKLE_WARNING
-from .common import UsageError, tolerance
+from .common import PROG, UsageError, tolerance
 
 
 def add(commands):
@@ -20,7 +21,7 @@ def add(commands):
     p.add_argument("model", metavar="MODEL",
                    help="joblib or pickle file of the fitted source model (trusted files only: loading it "
                         "runs code)")
-    p.add_argument("artefacts", metavar="ARTEFACT", nargs="+", help="artefact file(s) to verify (.json)")
+    p.add_argument("artefacts", metavar="ARTEFACT", nargs="+", help="artefact file(s) to verify: boxwood JSON artefacts (.json) or ONNX files (.onnx)")
     p.add_argument("--data", metavar="FILE",
                    help="rows to compare on besides the generated probes: CSV with a header row or JSON "
                         "Lines, read as 'boxwood score' reads them")
@@ -39,24 +40,52 @@ def add(commands):
     p.set_defaults(func=run)
 
 
-def run(args):
-    from ..verify import verify
+def _found(path, what):
+    """None when ``path`` is a readable file, else the reason (a missing file, a folder)."""
+    if os.path.isdir(path):
+        return "%s %r is a folder, not a file" % (what, path)
+    if not os.path.isfile(path):
+        return "%s %r not found" % (what, path)
+    return None
 
-    if not os.path.isfile(args.model):
-        raise UsageError("model file %r not found" % args.model)
-    for path in args.artefacts:
-        if not os.path.isfile(path):
-            raise UsageError("artefact file %r not found" % path)
-    if args.data is not None and not os.path.isfile(args.data):
-        raise UsageError("data file %r not found" % args.data)
-    if args.probes < 0:
-        raise UsageError("--probes must be 0 or more, got %d" % args.probes)
-    result = verify(args.model, args.artefacts, data=args.data, abs_tol=args.abs_tol, rel_tol=args.rel_tol,
-                    probes=args.probes, seed=args.seed, progress=False if args.quiet else None)
+
+def _write_reports(args, result):
     if args.report_json:
         result.write_json(args.report_json)
     if args.junit:
         result.write_junit(args.junit)
+
+
+def run(args):
+    """Verify; the JSON and JUnit reports are written whenever asked, also when the run
+    stops on bad input (exit 2: every artefact is then a failing case with the reason)."""
+    from ..verify import VerifyResult, verify
+
+    settings = {"probes": args.probes, "seed": args.seed, "data": args.data}
+    try:
+        problem = (_found(args.model, "model file")
+                   or (None if args.data is None else _found(args.data, "data file"))
+                   or ("--probes must be 0 or more, got %d" % args.probes if args.probes < 0 else None))
+        if problem:
+            raise UsageError(problem)
+        result = verify(args.model, args.artefacts, data=args.data, abs_tol=args.abs_tol, rel_tol=args.rel_tol,
+                        probes=args.probes, seed=args.seed, progress=False if args.quiet else None,
+                        bad_artefacts="report")
+    except ImportError as exc:  # an optional dependency (onnxruntime for .onnx files)
+        message = "%s is needed to run these artefacts: pip install \"boxwood[onnx]\" (%s)" % (
+            getattr(exc, "name", None) or "a package", exc)
+        _write_reports(args, VerifyResult.bad_input(os.path.basename(args.model), args.model, args.artefacts,
+                                                    message, settings))
+        raise UsageError(message)
+    except (ValueError, OSError) as exc:
+        message = str(exc) or type(exc).__name__
+        _write_reports(args, VerifyResult.bad_input(os.path.basename(args.model), args.model, args.artefacts,
+                                                    message, settings))
+        raise
+    _write_reports(args, result)
     text = result.summary()
     print(text.splitlines()[0] if args.quiet else text)
+    if result.error is not None:
+        print("%s: error: %s" % (PROG, result.error["message"]), file=sys.stderr)
+        return 2
     return 0 if result.passed else 1

@@ -44,6 +44,9 @@ class Artefact:
     digest: Optional[str] = None
     self_check: Optional[Tuple[bool, str]] = None
     notes: List[str] = field(default_factory=list)
+    # Per output, the bound on |raw score - the source's| that the file itself states (a
+    # float32 graph's): the verifier holds the file to it instead of the default tolerance.
+    stated_raw_bound: Optional[List[float]] = None
 
 
 @dataclass(frozen=True)

@@ -27,6 +27,7 @@ from .report import ArtefactReport, Check, EvaluatorReport
 from .findings import OutputBound, Side
 from .structure import prove
 
+NOTHING_COMPARED = "not run: no rows were compared (no --data rows, --probes 0, or every row left out)"
 # The source model's outputs per input precision: (rows, kept row indices, outputs, refused rows).
 SourceRuns = Dict[str, Tuple[List[List[Any]], List[int], Outputs, List[Tuple[int, str]]]]
 
@@ -65,6 +66,35 @@ class Measured:
     seconds: float
 
 
+# ----------------------------------------------------------------------------- tolerances
+@dataclass
+class Tolerances:
+    """Per kind ("raw", "transformed"), one (abs, rel) per compared value, and where they come from."""
+
+    per_value: Dict[str, List[Tuple[float, float]]]
+    origin: str = "run"  # "run": the run's tolerances; "stated": the artefact's own stated bound
+
+
+def tolerances_for(a: Artefact, source: Ensemble, pb: ProvenBounds, tol: Dict[str, Dict[str, Any]]) -> Tolerances:
+    """The run's tolerances for every value, except for an artefact that states its own raw
+    error bound (a float32 ONNX graph) while the caller gave none: that file is held to what
+    it states - the stated raw bound per output, and that bound carried through the
+    post-transform (:func:`bounds.value_bounds`) for the transformed outputs."""
+    run = {kind: [(tol[kind]["abs"], tol[kind]["rel"])] * len(vbs)
+           for kind, vbs in (("raw", pb.exact), ("transformed", pb.transformed))}
+    stated = a.stated_raw_bound
+    if (not stated or len(stated) != source.n_outputs or tol["raw"]["origin"] == "given"
+            or not pb.proof.comparable):
+        return Tolerances(run)
+    carried = [OutputBound(o.output, o.name, False, float(b), 0.0, 0.0, 0.0, [], o.source_range, o.artefact_range)
+               for o, b in zip(pb.proof.outputs, stated)]
+    exact_t, trans_t, _ = bounds.value_bounds(source, carried)
+    per = {"raw": [(v.abs, 0.0) for v in exact_t],
+           "transformed": [(max(v.abs, t[0]), max(v.rel, t[1])) if tol["transformed"]["origin"] != "given" else t
+                           for v, t in zip(trans_t, run["transformed"])]}
+    return Tolerances(per, "stated")
+
+
 # ----------------------------------------------------------------------------- self-check
 def self_check(a: Artefact) -> List[Check]:
     if a.self_check is None:
@@ -73,6 +103,23 @@ def self_check(a: Artefact) -> List[Check]:
     return [Check("self-check", a.path, None, "pass" if ok else "fail",
                   message if ok else "the artefact's own self-check fails: " + message,
                   [] if ok else ["a device loading this artefact with the default settings refuses it: " + message])]
+
+
+# ----------------------------------------------------------------------------- data reading
+def data_reading_check(a: Artefact, reading: Any) -> List[Check]:
+    """``data reading``: the box reads the user's data file as the workstation does (pandas),
+    row by row and field by field. Absent when the data were Python values (one reading)."""
+    if reading is None:
+        return []
+    if reading.differences:
+        return [Check("data reading", a.path, None, "fail",
+                      "%d of %d data rows read differently by the box and by %s" % (
+                          reading.rows_differing, reading.rows, reading.workstation),
+                      list(reading.differences))]
+    if not reading.rows:
+        return [Check("data reading", a.path, None, "skip", "the data file %s holds no rows" % reading.file)]
+    return [Check("data reading", a.path, None, "pass",
+                  "%d data rows: the box's reading equals %s, field by field" % (reading.rows, reading.workstation))]
 
 
 # ----------------------------------------------------------------------------- structure
@@ -117,22 +164,22 @@ def structure_check(a: Artefact, ev: Any, pb: ProvenBounds) -> Check:
     return Check("structure", a.path, ev.name, "fail" if n_fail else "pass", summary, details, pb.seconds)
 
 
-def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tol: Dict[str, Dict[str, Any]]
-                 ) -> List[Check]:
+def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tols: Tolerances) -> List[Check]:
     """``bound: raw`` and ``bound: transformed``: the certified bound within the tolerance."""
     proof = pb.proof
     raw_bound = max((o.raw_abs for o in proof.outputs), default=0.0)
     checks = []
     for kind, vbs in (("raw", pb.exact), ("transformed", pb.transformed)):
-        tk = tol[kind]
         bad, parts = [], []
-        for vb in vbs:
+        for vb, (t_abs, t_rel) in zip(vbs, tols.per_value[kind]):
             parts.append("%s: %s" % (vb.name, "exact" if (vb.exact and kind == "raw") else
                                      "abs %s, rel %s" % (fmt_bound(vb.abs), fmt_bound(vb.rel))))
-            if bounds.within(vb.abs, vb.rel, tk["abs"], tk["rel"]):
+            if bounds.within(vb.abs, vb.rel, t_abs, t_rel):
                 continue
-            line = ("output %s: certified bound abs %s / rel %s exceeds the tolerance (abs %s, rel %s)"
-                    % (vb.name, fmt_bound(vb.abs), fmt_bound(vb.rel), fmt_bound(tk["abs"]), fmt_bound(tk["rel"])))
+            line = ("output %s: certified bound abs %s / rel %s exceeds the %s (abs %s, rel %s)"
+                    % (vb.name, fmt_bound(vb.abs), fmt_bound(vb.rel),
+                       "bound the file states" if tols.origin == "stated" else "tolerance",
+                       fmt_bound(t_abs), fmt_bound(t_rel)))
             if kind == "raw":
                 o = next((o for o in proof.outputs if o.name == vb.name), None)
                 if o is not None:
@@ -145,6 +192,9 @@ def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tol: 
                 line += "; from raw bounds up to %s through %s" % (fmt_bound(raw_bound), source.post_transform)
             bad.append(line)
         summary = "; ".join(parts[:3]) + ("; ..." if len(parts) > 3 else "")
+        if tols.origin == "stated":
+            summary += " (held to the raw error bound the file states%s)" % (
+                "" if kind == "raw" else ", carried through %s" % source.post_transform)
         extra = [proof.decisions] if (kind == "raw" and bad and proof.decisions) else []
         checks.append(Check("bound: %s" % kind, a.path, ev.name, "fail" if bad else "pass", summary, bad + extra))
     return checks
@@ -152,7 +202,7 @@ def bound_checks(a: Artefact, ev: Any, source: Ensemble, pb: ProvenBounds, tol: 
 
 # ----------------------------------------------------------------------------- empirical
 def measure(ev: Any, pb: ProvenBounds, source_runs: SourceRuns, all_origins: List[str],
-            tol: Dict[str, Dict[str, Any]], run: Any) -> Measured:
+            tols: Tolerances, run: Any) -> Measured:
     """Run ``ev`` on the rows of its input precision (``run(ev, rows)`` -> (outputs,
     refused rows)) and measure every value against the source's."""
     t = time.perf_counter()
@@ -171,7 +221,8 @@ def measure(ev: Any, pb: ProvenBounds, source_runs: SourceRuns, all_origins: Lis
     for kind, vbs, s_arr, a_arr in (("raw", pb.exact, src_out.raw, got.raw),
                                     ("transformed", pb.transformed, src_out.transformed, got.transformed)):
         for j, _ in enumerate(vbs):
-            m = empirical.measure(s_arr[idx, j], a_arr[idx, j], tol[kind]["abs"], tol[kind]["rel"])
+            t_abs, t_rel = tols.per_value[kind][j]
+            m = empirical.measure(s_arr[idx, j], a_arr[idx, j], t_abs, t_rel)
             m.worst_row = None if m.worst_row is None else int(idx[m.worst_row])
             m.examples = [int(idx[r]) for r in m.examples]
             per_value[kind].append(m)
@@ -206,7 +257,10 @@ def empirical_checks(a: Artefact, ev: Any, pb: ProvenBounds, me: Measured) -> Li
             sum(m.over for m in ms))
         if kind == "raw" and me.refused:
             summary += "; %d refused" % len(me.refused)
-        checks.append(Check("empirical: %s" % kind, a.path, ev.name, "fail" if details else "pass", summary, details,
+        status = "fail" if details else "pass"
+        if not len(me.idx) and not details:  # nothing compared is not a pass
+            status, summary = "skip", NOTHING_COMPARED
+        checks.append(Check("empirical: %s" % kind, a.path, ev.name, status, summary, details,
                             me.seconds if kind == "raw" else 0.0))
     return checks
 
@@ -216,6 +270,8 @@ def decisions_check(a: Artefact, ev: Any, source: Ensemble, me: Measured) -> Tup
     if source.task == "regression":
         return Check("empirical: decisions", a.path, ev.name, "skip", "regression: no decisions to compare"), None
     idx = me.idx
+    if not len(idx):
+        return Check("empirical: decisions", a.path, ev.name, "skip", NOTHING_COMPARED), None
     s_lab = [me.source.labels[i] for i in idx]
     a_lab = [me.got.labels[i] for i in idx]
     rule = source.binary_rule if (source.n_outputs == 1 and source.task == "classification") else None
@@ -240,6 +296,8 @@ def bound_holds_check(a: Artefact, ev: Any, pb: ProvenBounds, me: Measured) -> C
                 broken.append("output %s %s: observed abs %r / rel %r, certified abs %r / rel %r (row %s, %s)" % (
                     vb.name, kind, m.max_abs, m.max_rel, vb.abs, vb.rel, m.worst_row,
                     me.origins[m.worst_row] if m.worst_row is not None else "-"))
+    if not broken and not len(me.idx):
+        return Check("bound holds", a.path, ev.name, "skip", NOTHING_COMPARED)
     if broken:
         broken.append("the certified bound's assumptions do not hold here (e.g. exp less accurate than assumed) "
                       "or boxwood has a bug: please report it")
@@ -259,9 +317,10 @@ def verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: Any, sou
              "effective_compare_precision": ev.compare_precision or a.ensemble.compare_precision}
     phase("structure (%s)" % ev.name)
     pb = prove_bounds(a, ev, source, source_ev, cache)
-    checks = [structure_check(a, ev, pb)] + bound_checks(a, ev, source, pb, tol)
+    tols = tolerances_for(a, source, pb, tol)
+    checks = [structure_check(a, ev, pb)] + bound_checks(a, ev, source, pb, tols)
     phase(ev.name)
-    me = measure(ev, pb, source_runs, origins, tol, run)
+    me = measure(ev, pb, source_runs, origins, tols, run)
     checks += empirical_checks(a, ev, pb, me)
     decision, dec = decisions_check(a, ev, source, me)
     checks += [decision, bound_holds_check(a, ev, pb, me)]
@@ -281,6 +340,9 @@ def verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: Any, sou
              "outputs": [o.to_dict() for o in proof.outputs],
              "exact_values": [v.to_dict() for v in pb.exact],
              "transformed": [v.to_dict() for v in pb.transformed]}
+    if tols.origin == "stated":
+        props["tolerance"] = ("the raw error bound the file states, per output: %s"
+                              % ", ".join("%.3g" % t[0] for t in tols.per_value["raw"]))
     emp = {"rows": int(len(me.idx)),
            "refused": {"count": len(me.refused),
                        "examples": [{"row": i, "origin": me.origins[i], "message": m} for i, m in me.refused[:5]]},
@@ -293,8 +355,9 @@ def verify_evaluator(a: Artefact, ev: Any, source: Ensemble, source_ev: Any, sou
 
 def verify_artefact(a: Artefact, source: Ensemble, source_ev: Any, source_runs: SourceRuns, origins: List[str],
                     tol: Dict[str, Dict[str, Any]], cache: Dict[Tuple[Any, ...], ProvenBounds], run: Any,
-                    phase: Any) -> ArtefactReport:
+                    phase: Any, reading: Any = None) -> ArtefactReport:
     evs = [verify_evaluator(a, ev, source, source_ev, source_runs, origins, tol, cache, run, phase)
            for ev in a.evaluators]
     info = None if a.self_check is None else {"ok": bool(a.self_check[0]), "message": a.self_check[1]}
-    return ArtefactReport(a.path, a.format, a.digest, info, self_check(a), evs, list(a.notes))
+    return ArtefactReport(a.path, a.format, a.digest, info, self_check(a) + data_reading_check(a, reading), evs,
+                          list(a.notes))

@@ -17,7 +17,7 @@ from ..sources.model import SourceEvaluator
 from . import bounds
 from . import probes as probes_mod  # the parameter ``probes`` of verify() shadows the name
 from .checks import verify_artefact, zero_bound
-from .report import VerifyResult
+from .report import ArtefactReport, Check, VerifyResult
 
 CHUNK_ROWS = 1024
 PathLike = Union[str, Path]
@@ -118,7 +118,8 @@ def _run(ev: Any, rows: List[List[Any]], widths: Tuple[int, int], bar: _Progress
 def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike]], data: Any = None,
            abs_tol: Optional[float] = None, rel_tol: Optional[float] = None,
            probes: int = probes_mod.DEFAULT_PROBE_ROWS, seed: int = 0, progress: Optional[bool] = None,
-           tolerances: Optional[Dict[str, Tuple[float, float]]] = None) -> VerifyResult:
+           tolerances: Optional[Dict[str, Tuple[float, float]]] = None,
+           bad_artefacts: str = "raise") -> VerifyResult:
     """Prove that each artefact computes what the source model computes; return a VerifyResult.
 
     ``model_or_path``: the fitted estimator, or a joblib/pickle file of it. Loading a
@@ -131,6 +132,9 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     for every output kind, ``tolerances={"raw": (a, r), "transformed": (a, r)}`` sets one
     kind. ``probes``: the most generated probe rows (0: none). ``seed``: for the random
     rows. ``progress``: a progress bar on stderr (None: only on a terminal).
+    ``bad_artefacts``: "raise" (an artefact that cannot be opened raises ValueError/OSError)
+    or "report" (it becomes a failing ``open`` check with the reason, the others are
+    verified, and ``result.error`` is set: what ``boxwood verify`` does, exit code 2).
 
     Raises ValueError / OSError for bad input (an unreadable model, artefact or data file,
     an unsupported model); a parity failure is a result with ``passed`` False, not an error.
@@ -142,7 +146,21 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     paths = [artefact_paths] if isinstance(artefact_paths, (str, Path)) else list(artefact_paths)
     if not paths:
         raise ValueError("give at least one artefact to verify")
-    opened: List[Artefact] = [open_artefact(p) for p in paths]
+    if bad_artefacts not in ("raise", "report"):
+        raise ValueError("bad_artefacts must be 'raise' or 'report', got %r" % (bad_artefacts,))
+    opened: List[Artefact] = []
+    unopened: List[ArtefactReport] = []
+    for p in paths:
+        try:
+            opened.append(open_artefact(p))
+        except (ValueError, OSError) as exc:
+            if bad_artefacts == "raise":
+                raise
+            message = str(exc) or type(exc).__name__
+            if str(p) not in message:
+                message = "%s: %s" % (p, message)
+            unopened.append(ArtefactReport(str(p), "not opened", None, None, [
+                Check("open", str(p), None, "fail", "cannot open the artefact: " + message, [message])], []))
     if getattr(source, "fields", None) is not None:
         # An artefact holding a pipeline's tree part only (boxwood's ONNX graphs) takes the
         # preprocessed features: evaluators that can, prepare the raw-field rows with the
@@ -184,25 +202,31 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     try:
         bar.phase("source model")
         source_runs: Dict[str, Tuple[List[List[Any]], List[int], Outputs, List[Tuple[int, str]]]] = {}
-        src_out, src_refused = _run(source_ev, all_rows, widths, bar)
+        # The source model reads the user's data file as the workstation does (pandas);
+        # the artefacts read it as the box does. Probes are the same rows for both.
+        source_rows = rows.for_source()
+        src_out, src_refused = _run(source_ev, source_rows, widths, bar)
         source_runs["float64"] = (all_rows, list(range(len(all_rows))), src_out, src_refused)
         if src_refused:
             notes.append("the source model refused %d rows (they are left out); first: row %d (%s): %s"
                          % (len(src_refused), src_refused[0][0], rows.origins[src_refused[0][0]], src_refused[0][1]))
         if need32:
             r32, kept = probes_mod.round_rows_float32(all_rows, source)
-            out32, ref32 = _run(source_ev, r32, widths, bar)
+            s32 = probes_mod.round_rows_float32([source_rows[i] for i in kept], source, keep_all=True)[0]
+            out32, ref32 = _run(source_ev, s32, widths, bar)
             source_runs["float32"] = (r32, kept, out32, ref32)
         cache: Dict[Tuple[Any, ...], Any] = {}
 
         def run(ev: Any, block_rows: List[List[Any]]) -> Tuple[Outputs, List[Tuple[int, str]]]:
             return _run(ev, block_rows, widths, bar)
 
-        reports = [verify_artefact(a, source, source_ev, source_runs, rows.origins, tol, cache, run, bar.phase)
+        reports = [verify_artefact(a, source, source_ev, source_runs, rows.origins, tol, cache, run, bar.phase,
+                                   rows.reading)
                    for a in opened]
     finally:
         bar.close()
     counts = rows.counts()
+    reports = reports + unopened
     result = VerifyResult(
         model={"label": label, "path": model_path, "estimator": source.provenance.get("estimator"),
                "task": source.task, "trees": len(source.trees), "nodes": source.n_nodes,
@@ -216,6 +240,8 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
                   (None if data is None else type(data).__name__)},
         notes=notes,
     )
+    if unopened:
+        result.error = {"message": "; ".join(a.checks[0].details[0] for a in unopened), "exit_code": 2}
     result.seconds = time.perf_counter() - t0
     return result
 

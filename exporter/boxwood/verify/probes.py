@@ -24,6 +24,7 @@ Generated probes, in priority order, within a row budget (``DEFAULT_PROBE_ROWS``
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
 
@@ -48,6 +49,15 @@ class Rows:
         self.kinds: List[str] = []
         self.origins: List[str] = []
         self._seen: set = set()
+        # Rows the source model reads differently from the box (index -> the source's row):
+        # a data file is read by pandas for the source and by the box's reader for artefacts.
+        self.source_rows: Dict[int, List[Any]] = {}
+        self.reading: Optional["Reading"] = None
+
+    def for_source(self) -> List[List[Any]]:
+        """The rows as the source model reads them (the artefacts' rows, except where the
+        workstation's reading of a data file differs)."""
+        return [self.source_rows.get(i, r) for i, r in enumerate(self.rows)]
 
     def add(self, row: List[Any], kind: str, origin: str, dedupe: bool = True) -> bool:
         if dedupe:
@@ -77,40 +87,66 @@ def _key(v: Any) -> Any:
 
 
 # ----------------------------------------------------------------------------- user data
+@dataclass
+class Reading:
+    """How a data file was read on each side: the box's reader (``boxwood_runtime.stream``,
+    as ``boxwood score`` and ``box.py score`` read it) and the workstation's (pandas), and
+    every place, by row and field, where the two readings differ."""
+
+    file: str
+    fmt: str  # "csv" or "jsonl"
+    workstation: str  # the pandas call
+    rows: int  # data rows the box read
+    differences: List[str] = field(default_factory=list)
+    rows_differing: int = 0
+
+
 def read_data(data: Any, source: Ensemble) -> Rows:
     """The user's rows: a CSV (header row) or JSON Lines file path, a pandas DataFrame, a
     numpy array, or a list of records (dicts by feature name, or sequences in feature order).
 
-    Files are read as ``boxwood score`` reads them (the device scorer's record parsing:
-    missing-value tokens, numbers, category values; an unseen category is kept and routed
-    as missing). Raises ValueError naming the row and field of the first row the source
-    model cannot score (bad usage: exit code 2)."""
-    from boxwood_runtime import RecordError
+    A file is read twice, once for each side: by the box's reader for the artefacts
+    (``boxwood_runtime.stream.read_records``, the device scorer's record parsing: missing
+    tokens, numbers, category values; an unseen category is kept and routed as missing),
+    and by pandas for the source model (``pandas.read_csv`` / ``pandas.read_json(lines=True)``:
+    what the workstation feeds a model trained on a DataFrame). Where the two readings of a
+    row differ, the source gets pandas' values, and ``Rows.reading`` names the row and field
+    (the verifier then fails: the box would not compute what the workstation computes).
+    Python data (a DataFrame, an array, records) is one reading, given to both sides.
 
+    Raises ValueError naming the row and field of the first row that neither reading can
+    score (bad input: exit code 2)."""
     from ..formats.json.device import device_model
 
     model = device_model(source)
     out = Rows()
-    if isinstance(data, (str, Path)):
-        records = _file_records(Path(data), model)
-    else:
-        records = _python_records(data, model)
     names = input_names(model)
-    for n, where, record in records:
-        try:
-            if isinstance(record, dict):
-                row = [record.get(name) for name in names]
-                model.prepare(record, n)
-            else:
-                row = list(record)
-                model.prepare(row, n)
-        except RecordError as exc:
-            raise ValueError("%s: %s" % (where, exc.reason if exc.field is None else
-                                         "field %r: %s" % (exc.field, exc.reason)))
-        except OverflowError as exc:
-            raise ValueError("%s: a number is out of range: %s" % (where, exc))
-        out.add([_clean(v) for v in row], "data", where, dedupe=False)
+    if isinstance(data, (str, Path)):
+        _read_file_both_ways(Path(data), model, names, out)
+        return out
+    for n, where, record in _python_records(data, model):
+        row = _checked_row(model, n, where, record, names)
+        out.add(row, "data", where, dedupe=False)
     return out
+
+
+def _checked_row(model: Any, n: int, where: str, record: Any, names: List[str]) -> List[Any]:
+    """The record as a row in ``names`` order, after the device scorer accepted it."""
+    from boxwood_runtime import RecordError
+
+    try:
+        if isinstance(record, dict):
+            row = [record.get(name) for name in names]
+            model.prepare(record, n)
+        else:
+            row = list(record)
+            model.prepare(row, n)
+    except RecordError as exc:
+        raise ValueError("%s: %s" % (where, exc.reason if exc.field is None else
+                                     "field %r: %s" % (exc.field, exc.reason)))
+    except OverflowError as exc:
+        raise ValueError("%s: a number is out of range: %s" % (where, exc))
+    return [_clean(v) for v in row]
 
 
 def _clean(v: Any) -> Any:
@@ -119,35 +155,101 @@ def _clean(v: Any) -> Any:
     if isinstance(v, float) and v != v:
         return None
     if isinstance(v, (bool, np.bool_)):
-        return v
+        return bool(v)
     if isinstance(v, (int, np.integer)) and not isinstance(v, bool):
         return float(v)
     if isinstance(v, np.floating):
         v = float(v)
         return None if v != v else v
+    if v.__class__.__name__ in ("NAType", "NaTType"):  # pandas' own missing markers
+        return None
     return v
 
 
-def _file_records(path: Path, model: Any) -> Iterable[Tuple[int, str, Any]]:
-    """The data file's records, read as ``boxwood score`` reads them (CSV with a header or
-    JSON Lines, the artefact's missing tokens); the first unreadable row is an error."""
+def same_value(box: Any, workstation: Any) -> bool:
+    """Whether the box's parsed value and the workstation's are the same input: both
+    missing, equal numbers, or equal strings (a string and a number never are)."""
+    if box is None or workstation is None:
+        return box is None and workstation is None
+    num = (int, float)
+    if isinstance(box, bool) or isinstance(workstation, bool):
+        return type(box) is type(workstation) and box == workstation
+    if isinstance(box, num) and isinstance(workstation, num):
+        return float(box) == float(workstation)
+    return type(box) is type(workstation) and box == workstation
+
+
+def _shown(v: Any) -> str:
+    return "missing" if v is None else repr(v)
+
+
+def _read_file_both_ways(path: Path, model: Any, names: List[str], out: Rows) -> None:
     from boxwood_runtime.stream import StreamError, read_records
 
+    if path.is_dir():
+        raise IsADirectoryError("data file %r is a folder, not a file" % str(path))
     if not path.is_file():
         raise FileNotFoundError("data file %r not found" % str(path))
     try:
         with path.open(encoding="utf-8", newline="") as fh:
-            _, _, rows, _ = read_records(model, fh)
-            out = []
-            for n, where, _ident, _has_id, record, error in rows:
-                if error is not None:
-                    raise ValueError("data %s" % error)
-                out.append((n, "data " + where, record))
-            return out
+            fmt, _, rows, _ = read_records(model, fh)
+            box = [(n, "data " + where, record, error) for n, where, _ident, _has_id, record, error in rows]
     except UnicodeDecodeError as exc:
         raise ValueError("the data file %r is not UTF-8 text: %s" % (str(path), exc))
     except StreamError as exc:
         raise ValueError("the data file %r: %s" % (str(path), exc))
+    frame, call = _workstation_frame(path, fmt)
+    lacking = [f for f in names if f not in frame.columns]
+    if lacking:
+        raise ValueError("pandas reads no column %s from the data file %r (it reads: %s)" % (
+            ", ".join(map(repr, lacking)), str(path), ", ".join(map(str, frame.columns))))
+    theirs = frame[names].to_dict("records")
+    reading = Reading(str(path), fmt, call, len(box))
+    if len(theirs) != len(box):
+        reading.differences.append("the box reads %d data rows, %s reads %d" % (len(box), call, len(theirs)))
+    for k, (n, where, record, error) in enumerate(box):
+        ws = [_clean(theirs[k][name]) for name in names] if k < len(theirs) else None
+        if error is not None:
+            # The box refuses the row. If the workstation reads the refused field as missing
+            # (a token only pandas knows, say), the two readings differ: a parity failure.
+            # Otherwise both sides see a bad value: bad input, as before.
+            refused = next((i for i, nm in enumerate(names) if ", field %r:" % (nm,) in error), None)
+            if ws is None or refused is None or ws[refused] is not None:
+                raise ValueError("data %s" % error)
+            reading.rows_differing += 1
+            reading.differences.append("%s, field %r: the box refuses the value (%s); %s reads it as missing" % (
+                where, names[refused], error.split(": ", 1)[-1], call))
+            continue
+        row = _checked_row(model, n, where, record, names)
+        index = len(out.rows)
+        out.add(row, "data", where, dedupe=False)
+        if ws is None:
+            continue
+        differ = [(nm, b, w) for nm, b, w in zip(names, row, ws) if not same_value(b, w)]
+        if differ:
+            reading.rows_differing += 1
+            out.source_rows[index] = ws
+            for nm, b, w in differ:
+                reading.differences.append("%s, field %r: the box reads %s, %s reads %s" % (
+                    where, nm, _shown(b), call, _shown(w)))
+    out.reading = reading
+
+
+def _workstation_frame(path: Path, fmt: str) -> Tuple[Any, str]:
+    """The data file as the workstation reads it: pandas' defaults, as a user would call them."""
+    import pandas as pd
+
+    try:
+        if fmt == "jsonl":
+            # precise_float=True: pandas' default JSON float parser is not correctly rounded
+            # (it reads 0.0514740612 one ulp off; tests/test_verify_data.py shows it), while
+            # read_csv's default and the box's float() are. A workstation that scores JSON
+            # Lines should pass it too (README, "Verify in CI").
+            return (pd.read_json(path, lines=True, precise_float=True),
+                    "pandas.read_json(lines=True, precise_float=True)")
+        return pd.read_csv(path), "pandas.read_csv"
+    except (ValueError, pd.errors.ParserError) as exc:
+        raise ValueError("pandas cannot read the data file %r: %s" % (str(path), exc))
 
 
 def input_names(model: Any) -> List[str]:
@@ -427,9 +529,11 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
     return out
 
 
-def round_rows_float32(rows: Sequence[Sequence[Any]], source: Ensemble) -> Tuple[List[List[Any]], List[int]]:
+def round_rows_float32(rows: Sequence[Sequence[Any]], source: Ensemble, keep_all: bool = False
+                       ) -> Tuple[List[List[Any]], List[int]]:
     """Rows with numeric values rounded to float32 (for evaluators that take float32 input);
-    returns (rows, indices kept): rows with a value beyond the float32 range are dropped."""
+    returns (rows, indices kept): rows with a value beyond the float32 range are dropped
+    (``keep_all``: kept, with the value as infinity)."""
     out, kept = [], []
     numeric = [not f.is_categorical for f in source.features]
     for i, r in enumerate(rows):
@@ -437,7 +541,7 @@ def round_rows_float32(rows: Sequence[Sequence[Any]], source: Ensemble) -> Tuple
         for j, v in enumerate(r):
             if numeric[j] and isinstance(v, float):
                 w = numerics.round32(v)
-                if math.isinf(w) and not math.isinf(v):
+                if math.isinf(w) and not math.isinf(v) and not keep_all:
                     break
                 new.append(w)
             else:

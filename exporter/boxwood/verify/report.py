@@ -92,6 +92,29 @@ class VerifyResult:
     settings: Dict[str, Any]
     notes: List[str] = field(default_factory=list)
     seconds: float = 0.0
+    # Set when the run met bad input (an unreadable model, artefact or data file): the
+    # message and the exit code the command line returns (2). The report still lists every
+    # artefact, a bad one as a failing check with its reason.
+    error: Optional[Dict[str, Any]] = None
+
+    @classmethod
+    def bad_input(cls, model_label: str, model_path: Optional[str], artefact_paths: List[str], message: str,
+                  settings: Dict[str, Any]) -> "VerifyResult":
+        """The result of a run that stopped on bad input before anything was compared: every
+        artefact gets a failing ``input`` check with the reason, so that CI shows it."""
+        unknown = "not computed: the run stopped on bad input"
+        checks = [ArtefactReport(p, "not opened", None, None,
+                                 [Check("input", p, None, "fail", "bad input: " + message, [message])], [])
+                  for p in artefact_paths]
+        return cls(
+            model={"label": model_label, "path": model_path, "estimator": None, "task": None, "trees": None,
+                   "nodes": None, "outputs": None, "post_transform": None, "compare_precision": None,
+                   "classes": None},
+            artefacts=checks,
+            rows={"total": 0, "data": 0, "special": 0, "split": 0, "random": 0},
+            tolerances={k: {"abs": 0.0, "rel": 0.0, "origin": "default", "why": unknown}
+                        for k in ("raw", "transformed")},
+            settings=settings, notes=[message], error={"message": message, "exit_code": 2})
 
     @property
     def checks(self) -> List[Check]:
@@ -131,9 +154,12 @@ class VerifyResult:
         if self.passed:
             exact = all(o.get("exact") for a in self.artefacts for e in a.evaluators
                         for o in e.bound.get("outputs", []))
-            head += " - %s; %d rows agree" % (
+            total = self.rows.get("total", 0)
+            head += " - %s; %s" % (
                 "raw scores proven bit-identical for every input" if exact else "proven within tolerance for every input",
-                self.rows.get("total", 0))
+                "%d rows agree" % total if total else "no rows compared (give --data or probes)")
+        elif self.error is not None:
+            head += " - bad input: %s" % self.error["message"]
         else:
             head += " - %d of %d checks failed" % (n_fail, len(checks))
         lines = [head]
@@ -167,7 +193,10 @@ class VerifyResult:
             seen: Dict[Any, List[str]] = {}
             order2 = []
             for c in failed:
-                for d in c.details[:4]:
+                shown = c.details[:4]
+                if len(c.details) > 4:  # the table's count and this list must agree
+                    shown = shown + ["... and %d more (the JSON report lists them all)" % (len(c.details) - 4)]
+                for d in shown:
                     key = (c.artefact, c.name, d)
                     if key not in seen:
                         seen[key] = []
@@ -203,6 +232,8 @@ class VerifyResult:
             "checks": [c.to_dict() for c in self.checks],
             "artefacts": [a.to_dict() for a in self.artefacts],
         }
+        if self.error is not None:
+            doc["error"] = dict(self.error)
         return _jsonable(doc)
 
     def to_json(self, indent: Optional[int] = 2) -> str:

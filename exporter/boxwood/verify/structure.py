@@ -150,7 +150,13 @@ def _leaf_pattern(proof: Proof, pairs: List[Tuple[float, float]]) -> None:
 
 
 # ----------------------------------------------------------------------------- rounding
-def rounding_term(side: Side, n_trees: int, leaf_abs: Fraction, base_abs: Fraction, combine: str) -> Fraction:
+def _in_float32(base: float, trees: List[Tuple[int, Tree]]) -> bool:
+    """Whether the base value and every leaf are float32 values (rounding them to float32 is exact)."""
+    return numerics.round32(base) == base and all(numerics.round32(v) == v for _, t in trees for v in leaf_values(t))
+
+
+def rounding_term(side: Side, n_trees: int, leaf_abs: Fraction, base_abs: Fraction, combine: str,
+                  terms_in_float32: bool = False) -> Fraction:
     """Bound on |computed raw - exact raw| for one side (Higham 2002, sections 3.1 and 4.2).
 
     ``leaf_abs`` is the sum over trees of the largest |leaf|, ``base_abs`` is |base|.
@@ -158,13 +164,14 @@ def rounding_term(side: Side, n_trees: int, leaf_abs: Fraction, base_abs: Fracti
     each term passes through at most n - 1 roundings, so by Lemma 3.1 the error is at most
     gamma_{n-1} * sum |terms| (eq. 4.4 for recursive summation; the same argument covers
     any addition tree). A float32 accumulator first rounds each term to float32: one more
-    rounding, gamma_n, with u = 2**-24.
+    rounding, gamma_n, with u = 2**-24 - unless every term already is a float32 value
+    (``terms_in_float32``: a float32 graph's leaves and base values), when that rounding is exact.
     combine "mean": raw = base + (leaf_1 + ... + leaf_T) / T, with T - 1 additions, one
     division and one addition; with M = leaf_abs / T and g = gamma_{T-1}:
     |error| <= g M + u (1 + g) M + u (|base| + (1 + g)(1 + u) M).
     """
     u = numerics.UNIT_ROUNDOFF[side.summation_precision]
-    extra = 1 if side.summation_precision == "float32" else 0
+    extra = 1 if side.summation_precision == "float32" and not terms_in_float32 else 0
     if combine == "sum":
         k = n_trees + extra
         return numerics.gamma(k, u) * (base_abs + leaf_abs) if k else Fraction(0)
@@ -288,8 +295,8 @@ def _prove_output(ctx: Context, proof: Proof, k: int, leaf_pairs: List[Tuple[flo
     n_s, n_a = len(trees_s), len(trees_a)
     mag_s, rng_s = _magnitude(es.base_values[k], [t for _, t in trees_s], combine)
     mag_a, rng_a = _magnitude(ea.base_values[k], [t for _, t in trees_a], combine)
-    r_s = rounding_term(src, n_s, mag_s, abs(Fraction(bs)), combine)
-    r_a = rounding_term(art, n_a, mag_a, abs(Fraction(ba)), combine)
+    r_s = rounding_term(src, n_s, mag_s, abs(Fraction(bs)), combine, _in_float32(bs, trees_s))
+    r_a = rounding_term(art, n_a, mag_a, abs(Fraction(ba)), combine, _in_float32(ba, trees_a))
     rounding = Fraction(0) if exact else r_s + r_a
     if combine == "mean":
         if n_s == n_a and n_s > 0:

@@ -172,4 +172,4 @@ def open_artefact(path: Path) -> Artefact:
                     format="ONNX (%s, ai.onnx.ml opset %s)" % (
                         tree.op_type, {o.domain: o.version for o in model.opset_import}.get("ai.onnx.ml")),
                     digest="sha256:" + hashlib.sha256(data).hexdigest(), self_check=check_onnx(model),
-                    notes=notes)
+                    notes=notes, stated_raw_bound=[float(b) for b in bound] if isinstance(bound, list) else None)
