@@ -60,7 +60,7 @@ def file_kind(path, head_bytes=4096):
         if len(lines) > 1 and all(line.lstrip()[:1] == b"{" and line.rstrip()[-1:] == b"}" for line in lines[:-1]):
             return "jsonl"
         return "json"
-    if head[:1] == b"\x80" or head[:2] in (b"\x1f\x8b", b"BZ") or head[:1] == b"\x78" or head[:6] == b"\xfd7zXZ\x00":
+    if head[:1] == b"\x80" or head[:2] in (b"\x1f\x8b", b"BZ") or head[:2] in (b"\x78\x01", b"\x78\x5e", b"\x78\x9c", b"\x78\xda") or head[:6] == b"\xfd7zXZ\x00":
         return "pickle"  # pickle protocol 2+ or a joblib compression header (zlib, gzip, bz2, xz)
     for fmt in formats.FORMATS.values():
         if fmt.name != "json" and fmt.sniff is not None and fmt.sniff(head):

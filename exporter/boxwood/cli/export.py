@@ -68,9 +68,9 @@ def run(args):
     from ..export import export
 
     check_model_file(args.model)
+    output_path(args.output, "output")
     fmt = formats.for_output(args.output, args.artefact_format)
     options = _options(args, fmt)
-    output_path(args.output, "output")
     try:
         result = export(args.model, args.output, fmt=fmt.name, reference_rows=args.reference_rows, **options)
     except UnsupportedModel as exc:
