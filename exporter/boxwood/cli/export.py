@@ -11,6 +11,8 @@ MODEL_TAKES = ("a fitted model saved with joblib or pickle, an ONNX tree-ensembl
 def check_model_file(path):
     """UsageError for a missing file, a folder or a data file given where a model is expected."""
     kind = existing_file(path, "model")
+    if formats.registry.by_extension(path) is not None:
+        return kind  # named as an artefact format (.onnx, .json): that format's reader says what is wrong
     if kind in ("csv", "jsonl", "text", "zip", "json"):
         if kind in ("csv", "jsonl"):
             raise UsageError("%r: this is %s, not a model; expected %s" % (path, kind_text(kind), MODEL_TAKES))

@@ -73,6 +73,9 @@ def example_jsonl(names, row):
 
 def run(args):
     kind = existing_file(args.artefact, "artefact")
+    named = formats.registry.by_extension(args.artefact)
+    if named is not None and named.name != "json" and kind not in formats.FORMATS:
+        kind = named.name  # named .onnx (...): that format's reader says what is wrong with it
     if kind in ("json-artefact", "json"):
         from ..formats.json.check import describe, example_row
 
