@@ -103,8 +103,9 @@ def test_bundle_refuses_a_used_folder_and_a_damaged_artefact(made, tmp_path, cap
     bad = bytearray((folder / "model.json").read_bytes())
     bad[200] ^= 1
     (tmp_path / "bad.json").write_bytes(bytes(bad))
+    # README "Exit codes": a damaged artefact is a failed check (1), as in inspect/score/box.py check
     assert main(["bundle", str(tmp_path / "bad.json"), "-o", str(tmp_path / "b"),
-                 "--micropython-footprint", "skip"]) == 2
+                 "--micropython-footprint", "skip"]) == 1
     assert "digest mismatch" in capsys.readouterr().err
     assert not (tmp_path / "b").exists()
 

@@ -225,7 +225,9 @@ def test_usage_errors_exit_2(capsys):
         assert "Traceback" not in capsys.readouterr().err
 
 
-def test_missing_and_damaged_artefacts_exit_2(exported, tmp_path, capsys):
+def test_missing_artefacts_exit_2_and_damaged_ones_exit_1(exported, tmp_path, capsys):
+    # The exit-code table (README "Exit codes"): a missing file is bad input (2); a file
+    # that carries a boxwood digest but is cut short is a damaged artefact: a failed check (1).
     case, artefact = export(exported, "gbc_binary", capsys)
     data = artefact.read_bytes()
     half = tmp_path / "half.json"
@@ -234,10 +236,10 @@ def test_missing_and_damaged_artefacts_exit_2(exported, tmp_path, capsys):
     stub.write_bytes(data[:20])
     src = tmp_path / "in.csv"
     src.write_text(csv_text(device_for(artefact).feature_names, case.rows[:2]))
-    for path in (tmp_path / "absent.json", half, stub):
+    for path, code in ((tmp_path / "absent.json", 2), (half, 1), (stub, 1)):
         for argv in (["inspect", str(path)], ["inspect", str(path), "--json"],
                      ["score", str(path), str(src), "-o", str(tmp_path / "o.csv")]):
-            assert main(argv) == 2, argv
+            assert main(argv) == code, argv
             err = capsys.readouterr().err
             assert err.startswith("boxwood: error: ") and "Traceback" not in err, (argv, err)
     assert main(["score", str(artefact), str(tmp_path / "absent.csv")]) == 2

@@ -48,6 +48,10 @@ class BundleError(ValueError):
     """The bundle cannot be made (bad source, folder in the way, measurement required but impossible)."""
 
 
+class BundleCheckFailed(BundleError):
+    """The artefact to bundle fails its self-check (the command line exits 1 for it, as for any failed check)."""
+
+
 def runtime_dir() -> Path:
     import boxwood_runtime
 
@@ -79,12 +83,15 @@ def artefact_from(source: Union[str, Path], reference_rows: int = 6) -> bytes:
         raise BundleError("%s not found (or not a file)" % source)
     if formats.registry.sniff(path) is formats.by_name("json"):
         data = path.read_bytes()
-        boxwood_runtime.load(data)  # digest, structure, self-check: never bundle a bad artefact
+        model = boxwood_runtime.load(data, self_check=False)  # digest, structure: never bundle a bad artefact
+        ok, message = model.self_check()
+        if not ok:
+            raise BundleCheckFailed("%s fails its self-check: %s" % (source, message))
         return data
     with tempfile.TemporaryDirectory() as tmp:
         result = export(path, Path(tmp) / ARTEFACT, reference_rows=reference_rows)
         if not result.ok:
-            raise BundleError("the exported artefact fails its self-check: %s" % result.check[1])
+            raise BundleCheckFailed("the exported artefact fails its self-check: %s" % result.check[1])
         return (Path(tmp) / ARTEFACT).read_bytes()
 
 
@@ -150,8 +157,19 @@ Python - CPython 3.8 or newer, or MicroPython 1.2x built with double-precision f
                                 CSV with a header row, or JSON Lines; one output row per
                                 input row, in order; a row that cannot be scored becomes
                                 an error row naming the row and the field (exit 2)
-  python3 box.py info           what the model is, its inputs, its footprint
+  python3 box.py info           what the model is, its input fields (kind and
+                                preprocessing steps), its footprint
+  python3 box.py info --csv-header     a CSV header line for score
+  python3 box.py info --example-jsonl  one JSON Lines record score accepts
   python3 box.py --version      versions of box.py, the scorer and this Python
+
+Exit codes (every command):
+  0  success
+  1  a check failed: something inside this folder is wrong (a file missing,
+     changed or cut short, a damaged manifest or artefact, another scorer
+     version, a failed self-check); score and info refuse to run then
+  2  bad usage or bad input: an unknown command or option, a --bundle folder or
+     an input file that is not there, a score run with error rows, Python 2
 
 On MicroPython: micropython box.py check (score takes JSON Lines only there).
 Run `check` after every copy and after every update, before the model is used.
@@ -217,8 +235,11 @@ def make_bundle(source: Union[str, Path], out_dir: Union[str, Path], zip_file: b
     data = artefact_from(source, reference_rows=reference_rows)
     foot = footprint(data, measure=measure, port=port)
     model = boxwood_runtime.load(data)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    work = Path(tempfile.mkdtemp(prefix="." + out.name + ".", dir=str(out.parent)))
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        work = Path(tempfile.mkdtemp(prefix="." + out.name + ".", dir=str(out.parent)))
+    except OSError as exc:  # name the user's folder, not our temporary one
+        raise BundleError("cannot write the bundle folder %s: %s" % (out, exc.strerror or exc))
     try:
         (work / ARTEFACT).write_bytes(data)
         for name in RUNTIME_FILES:

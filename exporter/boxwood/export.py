@@ -91,13 +91,16 @@ def export(source: Any, path: Union[str, Path], fmt: Optional[str] = None, refer
     The format is ``fmt`` (a name such as "json" or "onnx") or follows the extension.
     ``writer_options`` go to the writer (ONNX: ``input_type``, ``legacy``; docs/onnx.md);
     an option the format does not take is an error. ``check=False`` skips the post-write
-    check (the result then says so)."""
+    check (the result then says so). When the check needs a package that is not installed,
+    :class:`boxwood.formats.MissingDependency` is raised before anything is written."""
     target = formats.for_output(path, fmt)
     write = target.needs("write")
     unknown = sorted(set(writer_options) - set(target.write_options))
     if unknown:
         raise formats.FormatError("the %s format takes no option %s (it takes: %s)" % (
             target.name, ", ".join(unknown), ", ".join(target.write_options) or "none"))
+    if check and target.check is not None and target.check_ready is not None:
+        target.check_ready()  # MissingDependency before anything is written: never an unchecked file
     ensemble, described, source_format = read_source(source, reference_rows)
     size = write(ensemble, path, **writer_options)
     result = (True, "not run (check=False)")

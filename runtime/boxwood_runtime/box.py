@@ -16,11 +16,18 @@ only (MicroPython has no csv module).
 scorer.py is the version the bundle was made with, the artefact's own digest, format
 version and structure, and then scores the artefact's reference rows and compares
 them with the numbers the source model gave on the workstation. It prints one line and
-exits 0 when all of that holds, else 1 with the first reason. ``score`` runs the same
-check first and refuses to score (exit 1) when it fails.
+exits 0 when all of that holds, else 1 with the first reason. ``score`` and ``info``
+run the same check first and refuse to go on (exit 1) when it fails.
 
-Exit codes: 0 success; 1 a check failed; 2 bad usage or bad input (including a
-``score`` run in which any row could not be scored: those rows are error rows).
+Exit codes (the same table as the workstation's ``boxwood`` command):
+
+    0  success
+    1  a check failed: anything wrong inside the bundle (a file missing, changed or
+       cut short, a damaged manifest or artefact, another scorer version, a failed
+       self-check)
+    2  bad usage or bad input: an unknown command or option, a --bundle folder that
+       is not there, an input file that is not there, a ``score`` run in which any
+       row could not be scored (those rows are error rows), Python 2
 
 Model outputs are advisory. Where they drive equipment, keep the equipment's own
 protections in charge; safety functions need their own engineering under the
@@ -46,14 +53,23 @@ commands:
                                score CSV (with a header) or JSON Lines from INPUT
                                (default: stdin) to OUTPUT (default: stdout), one output
                                row per input row, in order; bad rows become error rows
-  info [--json]                describe the model and its footprint
+  info [--json | --csv-header | --example-jsonl]
+                               describe the model: its input fields (kind and
+                               preprocessing steps), outputs and footprint;
+                               --csv-header prints a CSV header line for score,
+                               --example-jsonl one JSON Lines record score accepts
 
 options:
   --bundle DIR                 the bundle folder (default: the folder of box.py)
   --version                    print the versions and exit
   -h, --help                   print this help and exit
 
-exit codes: 0 success, 1 a check failed, 2 bad usage or bad input
+exit codes:
+  0  success
+  1  a check failed (anything wrong inside the bundle: missing, changed or damaged
+     files, another scorer version, a failed self-check)
+  2  bad usage or bad input (unknown command or option, missing --bundle folder or
+     input file, a score run with error rows, Python 2)
 """
 
 
@@ -84,6 +100,15 @@ def _size(path):
         return os.stat(path)[6]
     except OSError:
         return None
+
+
+def _is_folder(path):
+    import os
+
+    try:
+        return os.stat(path)[0] & 0o170000 == 0o040000  # S_IFDIR (MicroPython has no stat module)
+    except OSError:
+        return False
 
 
 def _sha256_file(path):
@@ -207,16 +232,91 @@ def cmd_check(folder, args):
     return 0
 
 
+def input_fields(doc):
+    """What a record carries, from the artefact document: a list of (name, kind, steps)
+    with kind "numeric", "categorical (N categories)" or "unused", and steps a list of
+    texts ("impute 0.5", "encode 3 categories (unknown: error)") feeding the features
+    named. Without preprocessing the record fields are the trees' features."""
+    inputs = doc.get("inputs") or {}
+    feats = inputs.get("features") or []
+    fields = inputs.get("fields")
+    out = []
+    if fields is None:
+        for f in feats:
+            cats = f.get("categories")
+            kind = "numeric" if cats is None else "categorical (%d categories)" % len(cats)
+            out.append((f.get("name"), kind, []))
+        return out
+    for name in fields:
+        kind, steps = "unused", []
+        for f in feats:
+            src = f.get("source") or {}
+            if src.get("field") != name:
+                continue
+            if kind == "unused":
+                kind = "numeric"
+            for step in src.get("steps") or []:
+                if step.get("op") == "impute":
+                    steps.append("impute %s" % (json.dumps(step.get("value")),))
+                elif step.get("op") == "encode":
+                    cats = step.get("categories") or []
+                    kind = "categorical (%d categories)" % len(cats)
+                    unknown = step.get("unknown")
+                    steps.append("encode %d categories (unknown: %s)" % (
+                        len(cats), "missing" if unknown is None else unknown))
+            steps.append("-> feature %s" % f.get("name"))
+        out.append((name, kind, steps))
+    return out
+
+
+def _csv_cell(text):
+    # MicroPython has no csv module: quote as RFC 4180 does where needed
+    if "," in text or '"' in text or "\n" in text or "\r" in text or text.strip() != text:
+        return '"' + text.replace('"', '""') + '"'
+    return text
+
+
+def csv_header(names):
+    """A CSV header line for records with these fields."""
+    return ",".join(_csv_cell(str(n)) for n in names)
+
+
+def example_record(doc, names):
+    """One JSON Lines record (a line of text) with values from the artefact's self-check
+    rows: the first row with no missing or non-finite value, else the first row."""
+    rows = (doc.get("self_check") or {}).get("rows") or []
+    chosen = rows[0] if rows else [None] * len(names)
+    for row in rows:
+        if all(v is not None and v not in ("inf", "-inf", "nan") for v in row):
+            chosen = row
+            break
+    # built by hand: MicroPython's json.dumps takes no options, and dict order is not kept
+    return "{" + ", ".join(json.dumps(str(n)) + ": " + json.dumps(v) for n, v in zip(names, chosen)) + "}"
+
+
 def cmd_info(folder, args):
     as_json = _flag(args, "--json")
+    header = _flag(args, "--csv-header")
+    example = _flag(args, "--example-jsonl")
     _no_more(args)
+    if as_json + header + example > 1:
+        raise Usage("give one of --json, --csv-header, --example-jsonl")
     manifest = read_manifest(folder)
     model, message = load_model(folder, manifest)
+    names = list(getattr(model, "input_names", model.feature_names))
+    if header:
+        print(csv_header(names))
+        return 0
+    if example:
+        print(example_record(model.doc, names))
+        return 0
     summary = model.summary()
+    fields = input_fields(model.doc)
     info = {
         "bundle": folder,
         "check": "ok: " + message,
         "model": summary,
+        "inputs": [{"name": n, "kind": k, "steps": st} for n, k, st in fields],
         "footprint": manifest.get("footprint"),
         "made_by": manifest.get("made_by"),
         "python": _platform(),
@@ -230,6 +330,10 @@ def cmd_info(folder, args):
         if key in summary and summary[key] is not None:
             print("%-10s %s" % (key.replace("n_", ""), summary[key]))
     print("features   %s" % ", ".join(str(f) for f in summary.get("features", [])))
+    print("inputs     %d field%s per record (CSV header: python3 box.py info --csv-header)"
+          % (len(fields), "" if len(fields) == 1 else "s"))
+    for name, kind, steps in fields:
+        print("  %-28s %s%s" % (name, kind, ("; " + ", ".join(steps)) if steps else ""))
     foot = manifest.get("footprint") or {}
     mpy = foot.get("micropython") or {}
     if mpy.get("measured"):
@@ -351,11 +455,28 @@ def versions():
     return text + "; on " + _platform()
 
 
-def main(argv=None):
+def python_problem(version_info):
+    """Why this Python cannot run box.py, or None. Python 2 must get this far: keep
+    the whole file parseable by Python 2 (tests/test_bundle.py checks it)."""
+    if version_info[0] < 3:
+        return ("needs Python 3 (CPython 3.8 or newer, or MicroPython); this is Python %s. "
+                "Run: python3 box.py ..." % ".".join(str(v) for v in version_info[:3]))
+    return None
+
+
+def main(argv=None, version_info=None):
     """Run a command; return the exit code."""
+    problem = python_problem(sys.version_info if version_info is None else version_info)
+    if problem:
+        sys.stderr.write("%s: error: %s\n" % (PROG, problem))
+        return 2
     args = list(sys.argv[1:] if argv is None else argv)
     try:
-        folder = _option(args, ("--bundle",), None) or _here()
+        given = _option(args, ("--bundle",), None)
+        if given is not None and not _is_folder(given):
+            raise Usage("--bundle %r: %s" % (given, "no such folder" if _size(given) is None
+                                              else "a file, expected the bundle folder"))
+        folder = given or _here()
         if "-h" in args or "--help" in args:
             sys.stdout.write(USAGE)
             return 0

@@ -12,10 +12,13 @@
 ``export`` loads a joblib or pickle file. Loading a pickle runs code stored in it:
 only export model files that you or someone you trust made.
 
-Exit codes: 0 success; 1 a check failed (an artefact's self-check, a demo
-comparison); 2 bad usage or bad input (including argparse's own usage errors and
-``score`` runs in which any row could not be scored). User errors are reported as
-one ``boxwood: error: ...`` line on stderr, never as a traceback.
+Exit codes (README.md, "Exit codes"; box.py keeps the same table): 0 success; 1 a
+check failed (an artefact's self-check, a damaged boxwood artefact, a verify parity
+check, a demo comparison); 2 bad usage or bad input (argparse's own usage errors, a
+missing file, a file of another kind, an unsupported model, an unwritable output, a
+missing optional dependency, ``score`` runs in which any row could not be scored).
+User errors are reported as one ``boxwood: error: ...`` line on stderr, never as a
+traceback.
 
 One module per command (``cli/<name>.py``) with ``add(commands)``, which adds the
 subparser and sets ``func`` to its ``run(args) -> exit code``; ``COMMANDS`` lists them.
@@ -43,7 +46,8 @@ def build_parser():
         prog=PROG,
         description="Export fitted scikit-learn tree ensembles to a documented artefact, score it "
                     "with a standard-library scorer, and check that both agree.",
-        epilog="Exit codes: 0 success, 1 a check failed, 2 bad usage or bad input. "
+        epilog="Exit codes: 0 success; 1 a check failed (a self-check, a damaged artefact, verify's parity); "
+               "2 bad usage or bad input (a missing or wrong kind of file, a missing dependency). "
                "'%s COMMAND --help' describes a command." % PROG)
     parser.add_argument("--version", action="version",
                         version="%s %s (device scorer %s)" % (PROG, __version__, boxwood_runtime.__version__))

@@ -1,6 +1,6 @@
 """``boxwood bundle``: one folder to copy onto a box (boxwood.bundle.make_bundle)."""
 from ..sources import PICKLE_WARNING
-from .common import footprint_text, positive_int
+from .common import CheckFailed, UsageError, existing_file, footprint_text, kind_text, load_artefact, positive_int
 
 
 def add(commands):
@@ -12,8 +12,8 @@ def add(commands):
                     "versions, footprint). SOURCE is a boxwood artefact (.json) or a fitted model saved "
                     "with joblib or pickle, exported on the way. WARNING: " + PICKLE_WARNING)
     p.add_argument("source", metavar="SOURCE",
-                   help="boxwood artefact (.json), or a joblib/pickle model file (trusted files only: "
-                        "loading it runs code)")
+                   help="boxwood JSON artefact (.json), a joblib/pickle model file (trusted files only: "
+                        "loading it runs code) or an ONNX tree-ensemble file (.onnx, read as data)")
     p.add_argument("-o", "--output", required=True, metavar="DIR", help="bundle folder to create (new or empty)")
     p.add_argument("--zip", action="store_true", help="also write DIR.zip (same bytes for the same bundle)")
     p.add_argument("--micropython-footprint", choices=("auto", "require", "skip"), default="auto",
@@ -26,10 +26,22 @@ def add(commands):
 
 
 def run(args):
-    from ..bundle import make_bundle
+    from ..bundle import BundleCheckFailed, make_bundle
+    from .export import check_model_file
 
-    manifest = make_bundle(args.source, args.output, zip_file=args.zip, measure=args.micropython_footprint,
-                           port=args.micropython_port, reference_rows=args.reference_rows)
+    kind = existing_file(args.source, "source")
+    if kind in ("json-artefact", "json"):
+        load_artefact(args.source)  # a damaged artefact or a failed self-check: exit 1; not an artefact: 2
+    elif kind in ("csv", "jsonl", "text", "zip"):
+        raise UsageError("%r is %s; expected a boxwood JSON artefact (.json), a joblib/pickle model file or an "
+                         "ONNX file" % (args.source, kind_text(kind)))
+    else:
+        check_model_file(args.source)
+    try:
+        manifest = make_bundle(args.source, args.output, zip_file=args.zip, measure=args.micropython_footprint,
+                               port=args.micropython_port, reference_rows=args.reference_rows)
+    except BundleCheckFailed as exc:
+        raise CheckFailed(str(exc))
     foot = manifest["footprint"]
     print("bundled %s into %s%s" % (args.source, args.output, " (and %s.zip)" % args.output if args.zip else ""))
     for name, entry in sorted(manifest["files"].items()):

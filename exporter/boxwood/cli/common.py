@@ -3,6 +3,7 @@ input and output that leave no half-written file behind."""
 import argparse
 import contextlib
 import io
+import os
 import sys
 
 PROG = "boxwood"
@@ -31,16 +32,130 @@ def error(message):
     print("%s: error: %s" % (PROG, message), file=sys.stderr)
 
 
+ARTEFACT_TAKES = "a boxwood JSON artefact (.json, written by 'boxwood export MODEL -o model.json')"
+_DIGEST_KEY = b'"boxwood_digest"'
+
+
+def file_kind(path, head_bytes=4096):
+    """What the file at ``path`` is, from its content: one of "folder", "missing",
+    "json-artefact" (a JSON object carrying a boxwood digest), "json" (another JSON
+    document), "jsonl" (JSON Lines data), "csv" (delimited text data), "text", "zip",
+    "pickle" (pickle or joblib), or the name of a registered artefact format
+    ("onnx", ...) whose sniff recognises it; "unknown" otherwise."""
+    from .. import formats
+
+    if os.path.isdir(path):
+        return "folder"
+    if not os.path.exists(path):
+        return "missing"
+    with open(path, "rb") as fh:
+        head = fh.read(head_bytes)
+    body = head.lstrip()
+    if head[:4] == b"PK\x03\x04":
+        return "zip"
+    if body[:1] == b"{":
+        if _DIGEST_KEY in head:
+            return "json-artefact"
+        lines = [line for line in body.splitlines() if line.strip()]
+        if len(lines) > 1 and all(line.lstrip()[:1] == b"{" and line.rstrip()[-1:] == b"}" for line in lines[:-1]):
+            return "jsonl"
+        return "json"
+    if head[:1] == b"\x80" or head[:2] in (b"\x1f\x8b", b"BZ") or head[:2] in (b"\x78\x01", b"\x78\x5e", b"\x78\x9c", b"\x78\xda") or head[:6] == b"\xfd7zXZ\x00":
+        return "pickle"  # pickle protocol 2+ or a joblib compression header (zlib, gzip, bz2, xz)
+    for fmt in formats.FORMATS.values():
+        if fmt.name != "json" and fmt.sniff is not None and fmt.sniff(head):
+            return fmt.name
+    if b"\x00" not in head:
+        try:
+            text = head.decode("utf-8")
+        except UnicodeDecodeError:
+            return "unknown"
+        first = text.splitlines()[0] if text.strip() else ""
+        return "csv" if any(d in first for d in ",;\t") else "text"
+    return "unknown"
+
+
+_KIND_TEXT = {
+    "json-artefact": "a boxwood JSON artefact",
+    "json": "a JSON document that is not a boxwood artefact",
+    "jsonl": "a data file (JSON Lines)",
+    "csv": "a data file (CSV text)",
+    "text": "a text file",
+    "zip": "a zip archive",
+    "pickle": "a joblib or pickle model file",
+    "onnx": "an ONNX file",
+    "unknown": "not a file boxwood recognises",
+}
+
+
+def kind_text(kind):
+    return _KIND_TEXT.get(kind, "a %s file" % kind)
+
+
+def existing_file(path, what):
+    """UsageError unless ``path`` is an existing file (not a folder); returns its kind."""
+    kind = file_kind(path)
+    if kind == "folder":
+        raise UsageError("%s %r is a folder; expected a file" % (what, path))
+    if kind == "missing":
+        raise UsageError("%s file %r not found" % (what, path))
+    return kind
+
+
+def refuse_kind(path, kind, takes, hint=""):
+    """UsageError saying what ``path`` is and what the command takes instead."""
+    raise UsageError("%r is %s; expected %s%s" % (path, kind_text(kind), takes, hint))
+
+
+_HINTS = {
+    "zip": " (unpack it first: a bundle's artefact is model.json)",
+    "pickle": " (export it first: boxwood export MODEL -o model.json)",
+    "onnx": " (an ONNX file runs in onnxruntime; to score with boxwood, export it: "
+            "boxwood export MODEL.onnx -o model.json)",
+}
+
+
 def load_artefact(path, unknown_category="error", self_check=True):
-    """Load an artefact with the device scorer; a failed self-check raises CheckFailed."""
+    """Load a boxwood JSON artefact with the device scorer, under the exit-code table:
+    a missing file, a folder or a file of another kind is bad input (UsageError, exit 2);
+    a file that carries a boxwood digest but fails the loader's checks (digest, structure,
+    format version) is damaged, and a failed self-check is a failed check (CheckFailed,
+    exit 1)."""
     import boxwood_runtime
 
-    model = boxwood_runtime.load(path, unknown_category=unknown_category, self_check=False)
+    kind = existing_file(path, "artefact")
+    if kind not in ("json-artefact", "json"):
+        refuse_kind(path, kind, ARTEFACT_TAKES, _HINTS.get(kind, ""))
+    try:
+        model = boxwood_runtime.load(path, unknown_category=unknown_category, self_check=False)
+    except boxwood_runtime.ArtefactError as exc:
+        if kind == "json-artefact":
+            raise CheckFailed("%s: damaged or unreadable artefact: %s" % (path, exc))
+        raise UsageError("%r is %s (%s); expected %s" % (path, kind_text(kind), exc, ARTEFACT_TAKES))
+    except OSError as exc:
+        raise UsageError("cannot read artefact %r: %s" % (path, exc.strerror or exc))
     if self_check:
         ok, message = model.self_check()
         if not ok:
             raise CheckFailed("%s: self-check failed: %s" % (path, message))
     return model
+
+
+def output_path(path, what="output"):
+    """UsageError unless ``path`` can be written as a file: not a folder, and its folder exists."""
+    if path == "-":
+        return path
+    if os.path.isdir(path):
+        raise UsageError("%s %r is a folder; expected a file name" % (what, path))
+    parent = os.path.dirname(os.path.abspath(path))
+    if not os.path.isdir(parent):
+        raise UsageError("cannot write %s %r: the folder %r does not exist" % (what, path, parent))
+    return path
+
+
+def write_error(path, exc, what="output"):
+    """A UsageError naming the user's ``path`` (never an internal temporary file) and the reason."""
+    return UsageError("cannot write %s %r: %s" % (what, str(path), exc.strerror or exc))
 
 
 @contextlib.contextmanager
@@ -71,7 +186,10 @@ class LazyFile:
 
     def write(self, text):
         if self.fh is None:
-            self.fh = open(self.path, "w", encoding="utf-8", newline="")
+            try:
+                self.fh = open(self.path, "w", encoding="utf-8", newline="")
+            except OSError as exc:
+                raise write_error(self.path, exc)
         return self.fh.write(text)
 
     def flush(self):

@@ -2,7 +2,22 @@
 in any registered format, checked after writing (boxwood.export.export)."""
 from .. import formats
 from ..sources import PICKLE_WARNING, SUPPORTED, UnsupportedModel
-from .common import CheckFailed, UsageError, positive_int
+from .common import CheckFailed, UsageError, existing_file, kind_text, output_path, positive_int, write_error
+
+MODEL_TAKES = ("a fitted model saved with joblib or pickle, an ONNX tree-ensemble file (.onnx) or a boxwood "
+               "JSON artefact (.json)")
+
+
+def check_model_file(path):
+    """UsageError for a missing file, a folder or a data file given where a model is expected."""
+    kind = existing_file(path, "model")
+    if formats.registry.by_extension(path) is not None:
+        return kind  # named as an artefact format (.onnx, .json): that format's reader says what is wrong
+    if kind in ("csv", "jsonl", "text", "zip", "json"):
+        if kind in ("csv", "jsonl"):
+            raise UsageError("%r: this is %s, not a model; expected %s" % (path, kind_text(kind), MODEL_TAKES))
+        raise UsageError("%r is %s; expected %s" % (path, kind_text(kind), MODEL_TAKES))
+    return kind
 
 
 def add(commands):
@@ -17,7 +32,9 @@ def add(commands):
                    help="joblib or pickle file of a fitted estimator (trusted files only: "
                         "loading it runs code), or an ONNX tree-ensemble file (.onnx: read as data, "
                         "never executed)")
-    p.add_argument("-o", "--output", required=True, metavar="OUT.json|OUT.onnx", help="artefact file to write")
+    p.add_argument("-o", "--output", required=True, metavar="OUT.json|OUT.onnx",
+                   help="artefact file to write: .json (boxwood JSON artefact, what 'boxwood score' and a "
+                        "bundle take) or .onnx")
     p.add_argument("--reference-rows", type=positive_int, default=6, metavar="N",
                    help="number of self-check rows scored by the source model and stored in the "
                         "artefact (default: %(default)s; one all-missing row is added when the "
@@ -52,6 +69,8 @@ def _options(args, fmt):
 def run(args):
     from ..export import export
 
+    check_model_file(args.model)
+    output_path(args.output, "output")
     fmt = formats.for_output(args.output, args.artefact_format)
     options = _options(args, fmt)
     try:
@@ -61,6 +80,10 @@ def run(args):
         if "supported models" not in message:
             message += "\nsupported models:\n  - " + "\n  - ".join(SUPPORTED)
         raise UsageError(message)
+    except OSError as exc:
+        if exc.filename and str(exc.filename).startswith(str(args.output)):
+            raise write_error(args.output, exc)
+        raise
     info = fmt.describe(result.path) if fmt.describe is not None else {}
     ensemble = result.ensemble
     print("exported %s to %s" % (result.source, result.path))

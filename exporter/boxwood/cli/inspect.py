@@ -4,18 +4,30 @@ import os
 from pathlib import Path
 
 from .. import formats
-from .common import footprint_text
+from .common import (ARTEFACT_TAKES, CheckFailed, UsageError, existing_file, footprint_text, load_artefact,
+                     refuse_kind)
+
+TAKES = "a boxwood JSON artefact (.json) or an ONNX tree-ensemble file (.onnx)"
 
 
 def add(commands):
     p = commands.add_parser(
         "inspect", help="describe an artefact and run its self-check",
         description="Describe an artefact (task, features, outputs, size of the ensemble, digest, "
-                    "provenance) and run its self-check. Exit 1 if the self-check fails, 2 if the "
-                    "file cannot be read as an artefact. An ONNX file (.onnx) is read with boxwood's "
-                    "ONNX reader and run with onnxruntime on reference rows.")
-    p.add_argument("artefact", metavar="ARTEFACT", help="boxwood artefact (.json)")
-    p.add_argument("--json", action="store_true", help="print the description as JSON")
+                    "provenance), the input fields a record carries (kind, preprocessing steps), and run "
+                    "its self-check. Exit 0 ok; 1 the self-check fails or a boxwood artefact is damaged; "
+                    "2 bad usage, or a file that is not an artefact (or onnxruntime missing for an ONNX "
+                    "file). An ONNX file (.onnx) is read with boxwood's ONNX reader and run with "
+                    "onnxruntime on reference rows.")
+    p.add_argument("artefact", metavar="ARTEFACT", help=TAKES)
+    shown = p.add_mutually_exclusive_group()
+    shown.add_argument("--json", action="store_true", help="print the description as JSON")
+    shown.add_argument("--csv-header", action="store_true",
+                       help="print only a CSV header line of the input fields, for 'boxwood score' (JSON "
+                            "artefacts)")
+    shown.add_argument("--example-jsonl", action="store_true",
+                       help="print only one JSON Lines record that 'boxwood score' accepts, with values from "
+                            "the artefact's self-check rows (JSON artefacts)")
     p.add_argument("--micropython", action="store_true",
                    help="measure the scorer's heap for one record under MicroPython (needs node and the "
                         "MicroPython WebAssembly port, see docs/device.md); without it, the numbers of a "
@@ -49,16 +61,42 @@ def _read_bytes(path):
         return fh.read()
 
 
-def run(args):
-    fmt = formats.for_file(args.artefact)
-    if fmt.name == "json":
-        from ..formats.json.check import describe, load_device
+def csv_header(names):
+    """A CSV header line (RFC 4180 quoting where needed), as box.py's ``csv_header``."""
+    return ",".join('"%s"' % n.replace('"', '""') if any(c in n for c in ',"\r\n') or n.strip() != n else n
+                    for n in map(str, names))
 
-        model = load_device(args.artefact)
+
+def example_jsonl(names, row):
+    return json.dumps(dict(zip(map(str, names), row)))
+
+
+def run(args):
+    kind = existing_file(args.artefact, "artefact")
+    named = formats.registry.by_extension(args.artefact)
+    if named is not None and named.name != "json" and kind not in formats.FORMATS:
+        kind = named.name  # named .onnx (...): that format's reader says what is wrong with it
+    if kind in ("json-artefact", "json"):
+        from ..formats.json.check import describe, example_row
+
+        model = load_artefact(args.artefact, self_check=False)
+        if args.csv_header or args.example_jsonl:
+            ok, message = model.self_check()
+            if not ok:
+                raise CheckFailed("%s: self-check failed: %s" % (args.artefact, message))
+            names = list(model.input_names)
+            print(csv_header(names) if args.csv_header else example_jsonl(names, example_row(model.doc)))
+            return 0
         info = describe(args.artefact, model)
         info["footprint"] = _inspect_footprint(args, model)
+    elif kind in formats.FORMATS:
+        if args.csv_header or args.example_jsonl:
+            raise UsageError("--csv-header and --example-jsonl describe the records 'boxwood score' takes, "
+                             "and score takes %s; %r is %s" % (ARTEFACT_TAKES, args.artefact,
+                                                                "an ONNX file" if kind == "onnx" else kind))
+        info = formats.by_name(kind).needs("describe")(args.artefact)
     else:
-        info = fmt.needs("describe")(args.artefact)
+        refuse_kind(args.artefact, kind, TAKES)
     if args.json:
         print(json.dumps(info, indent=2))
     else:
@@ -100,3 +138,11 @@ def _print_table(info, shown=40):
         print("  %-30s %s" % (f["name"], kind))
     if len(info["features"]) > shown:
         print("  ... and %d more (see --json)" % (len(info["features"]) - shown))
+    inputs = info.get("inputs") or []
+    print("input fields (what a record carries%s):" % (", as the trees' features" if not any(
+        i["steps"] for i in inputs) else "; steps to the trees' features"))
+    for i in inputs[:shown]:
+        kind = i["kind"] if i["categories"] is None else "%s, %d categories" % (i["kind"], i["categories"])
+        print("  %-30s %s%s" % (i["name"], kind, ("; " + ", ".join(i["steps"])) if i["steps"] else ""))
+    if len(inputs) > shown:
+        print("  ... and %d more (see --json)" % (len(inputs) - shown))

@@ -61,7 +61,10 @@ class Format:
       file, its digest and self-check (what ``verify`` needs);
     * ``check(path, ensemble) -> (ok, message)`` - the check run right after writing;
     * ``describe(path) -> dict`` - what ``inspect`` shows (keys as for a JSON artefact);
-    * ``sniff(first_bytes) -> bool`` - whether a file's first bytes are this format.
+    * ``sniff(first_bytes) -> bool`` - whether a file's first bytes are this format;
+    * ``check_ready() -> None`` - raises :class:`MissingDependency` (saying how to install
+      it) when an optional package that ``check``, ``describe`` or ``open`` runs is
+      missing; ``export`` calls it before writing, so that no file is left unchecked.
     """
 
     name: str
@@ -74,6 +77,7 @@ class Format:
     open: Optional[Callable[[Path], Artefact]] = None
     check: Optional[Callable[[Path, Optional[Ensemble]], Tuple[bool, str]]] = None
     describe: Optional[Callable[[Path], Dict[str, Any]]] = None
+    check_ready: Optional[Callable[[], None]] = None
 
     def needs(self, capability: str) -> Callable[..., Any]:
         """The function for ``capability`` ("write", "read", "open", "check", "describe"),
@@ -170,6 +174,8 @@ def open_artefact(path: PathLike) -> Artefact:
 
     fmt = for_file(path)
     opener = fmt.needs("open")
+    if fmt.check_ready is not None:
+        fmt.check_ready()
     try:
         opened = opener(Path(path))
     except ImportError as exc:  # an optional dependency of this format

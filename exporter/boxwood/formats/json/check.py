@@ -3,9 +3,10 @@
 ``verify`` opens (the registry's ``check``, ``describe`` and ``open`` of the JSON format)."""
 from __future__ import annotations
 
+import json
 import os
 from pathlib import Path
-from typing import Any, Dict, Optional, Tuple, Union
+from typing import Any, Dict, List, Optional, Tuple, Union
 
 import boxwood_runtime
 
@@ -45,6 +46,58 @@ def open_artefact(path: Path) -> Artefact:
                     digest=model.doc.get("boxwood_digest"), self_check=model.self_check())
 
 
+def describe_inputs(fields: Optional[List[str]], features: List[Tuple[str, Optional[list], Optional[dict]]]
+                    ) -> List[Dict[str, Any]]:
+    """What a record carries: per input field, its name, kind ("numeric", "categorical",
+    or "unused" for a field the preprocessing drops), the number of categories, and the
+    steps from the field to the trees' features ("impute 0.5", "encode 3 categories
+    (unknown: error)", "-> feature x0"). ``features`` holds (name, categories, source)
+    per tree feature; without ``fields`` the record fields are the features themselves.
+    box.py's ``input_fields`` gives the same on the device (tests/test_exit_codes.py)."""
+    if fields is None:
+        return [{"name": name, "kind": "numeric" if cats is None else "categorical",
+                 "categories": None if cats is None else len(cats), "steps": []}
+                for name, cats, _ in features]
+    out = []
+    for field in fields:
+        entry: Dict[str, Any] = {"name": field, "kind": "unused", "categories": None, "steps": []}
+        for name, _, source in features:
+            if not source or source.get("field") != field:
+                continue
+            if entry["kind"] == "unused":
+                entry["kind"] = "numeric"
+            for step in source.get("steps") or []:
+                if step.get("op") == "impute":
+                    entry["steps"].append("impute %s" % json.dumps(step.get("value")))
+                elif step.get("op") == "encode":
+                    cats = step.get("categories") or []
+                    entry["kind"], entry["categories"] = "categorical", len(cats)
+                    unknown = step.get("unknown")
+                    entry["steps"].append("encode %d categories (unknown: %s)"
+                                          % (len(cats), "missing" if unknown is None else unknown))
+            entry["steps"].append("-> feature %s" % name)
+        out.append(entry)
+    return out
+
+
+def _doc_inputs(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
+    inputs = doc.get("inputs") if isinstance(doc.get("inputs"), dict) else {}
+    feats = [f for f in inputs.get("features") or [] if isinstance(f, dict)]
+    return describe_inputs(inputs.get("fields"), [(f.get("name"), f.get("categories"), f.get("source"))
+                                                  for f in feats])
+
+
+def example_row(doc: Dict[str, Any]) -> List[Any]:
+    """Values for one record, from the artefact's self-check rows: the first row with no
+    missing or non-finite value, else the first row (box.py's ``example_record`` agrees)."""
+    ref = doc.get("self_check") if isinstance(doc.get("self_check"), dict) else {}
+    rows = ref.get("rows") or []
+    for row in rows:
+        if all(v is not None and v not in ("inf", "-inf", "nan") for v in row):
+            return list(row)
+    return list(rows[0]) if rows else []
+
+
 def describe(path: Union[str, Path], model: Any = None) -> Dict[str, Any]:
     """A JSON-friendly description of the artefact (what ``inspect --json`` prints)."""
     model = model if model is not None else load_device(path)
@@ -63,6 +116,7 @@ def describe(path: Union[str, Path], model: Any = None) -> Dict[str, Any]:
         "features": [{"name": n, "kind": "numeric" if c is None else "categorical",
                       "categories": None if c is None else len(c)}
                      for n, c in zip(model.feature_names, model.categories)],
+        "inputs": _doc_inputs(doc),
         "compare_precision": model.compare_precision,
         "missing_values": model.missing_values,
         "accepts_infinity": model.accepts_infinity,

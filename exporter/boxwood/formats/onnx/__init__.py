@@ -20,4 +20,5 @@ def sniff(head: bytes) -> bool:
 FORMAT = register(Format(
     name="onnx", extensions=(".onnx",), title="ONNX tree-ensemble graph",
     sniff=sniff, write=writer.write, write_options=("input_type", "legacy"), read=reader.read_onnx,
-    open=check.open_artefact, check=check.check_onnx, describe=check.describe_onnx))
+    open=check.open_artefact, check=check.check_onnx, describe=check.describe_onnx,
+    check_ready=check.require_runtime))

@@ -21,7 +21,8 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 import numpy as np
 
 from ...ir import Ensemble
-from ..registry import Artefact
+from ..registry import Artefact, MissingDependency
+from ..json.check import describe_inputs
 from ..json.device import hub_outputs
 from .evaluators import OnnxRuntimeEvaluator
 from .parse import TREE_OPS, load, metadata
@@ -49,6 +50,19 @@ def _ulps(a: float, b: float) -> int:
     return ulp_distance(float(a), float(b))
 
 
+RUNTIME_HINT = 'pip install "boxwood[onnx]"'
+
+
+def require_runtime() -> None:
+    """MissingDependency (with the install hint) unless onnxruntime can be imported: the
+    check of an ONNX file runs it, and a check that cannot run is never reported as passed."""
+    try:
+        import onnxruntime  # noqa: F401
+    except ImportError as exc:
+        raise MissingDependency("checking an ONNX file needs onnxruntime, which is not installed (%s): %s"
+                                % (exc, RUNTIME_HINT))
+
+
 def check_onnx(source: Any, expected: Optional[Ensemble] = None) -> Tuple[bool, str]:
     """Run the ONNX model with onnxruntime on reference rows; return (ok, one-line message).
 
@@ -56,12 +70,9 @@ def check_onnx(source: Any, expected: Optional[Ensemble] = None) -> Tuple[bool, 
     check uses the source numbers carried in the metadata, or the trees read from the file."""
     from boxwood_runtime.scorer import SELF_CHECK_ULPS
 
+    require_runtime()
     model = load(source)
     read = read_onnx(model)
-    try:
-        import onnxruntime  # noqa: F401
-    except ImportError:
-        return True, "not run: onnxruntime is not installed (pip install \"boxwood[onnx]\")"
     evaluator = OnnxRuntimeEvaluator(model, read)
     meta = metadata(model)
     semantics = meta.get("boxwood.semantics") if isinstance(meta.get("boxwood.semantics"), dict) else {}
@@ -137,6 +148,8 @@ def describe_onnx(path: Union[str, Path]) -> Dict[str, Any]:
         "task": e.task,
         "features": [{"name": f.name, "kind": f.kind, "categories": len(f.categories) if f.is_categorical else None}
                      for f in e.features],
+        "inputs": describe_inputs(e.fields, [(f.name, f.categories if f.is_categorical else None, f.source)
+                                             for f in e.features]),
         "compare_precision": e.compare_precision,
         "missing_values": e.missing_values,
         "accepts_infinity": e.accepts_infinity,
