@@ -55,11 +55,11 @@ def test_a_damaged_artefact_is_a_failing_case_and_the_others_are_still_verified(
     code = main(["verify", str(model), str(good), str(damaged), "--probes", "200", "--report-json", str(rj),
                  "--junit", str(rx)])
     out, err = capsys.readouterr()
-    assert code == 2
-    assert "damaged.json" in err and "Traceback" not in err
+    assert code == 1  # a damaged artefact is a failed check (README, "Exit codes")
+    assert "damaged.json" in out and "Traceback" not in err
     doc = json.loads(rj.read_text())
     _valid(doc)
-    assert doc["verdict"] == "fail" and doc["error"]["exit_code"] == 2
+    assert doc["verdict"] == "fail" and "error" not in doc
     by_path = {a["path"]: a for a in doc["artefacts"]}
     assert by_path[str(good)]["verdict"] == "pass" and by_path[str(good)]["evaluators"]
     bad = by_path[str(damaged)]
@@ -68,6 +68,21 @@ def test_a_damaged_artefact_is_a_failing_case_and_the_others_are_still_verified(
     cases = _junit_cases(rx)
     assert ("open", True, False) in cases
     assert any(name == "structure" and not failed for name, failed, _ in cases)
+
+
+def test_a_missing_artefact_is_bad_input_and_still_reported(files, tmp_path, capsys):
+    case, model, good, _ = files
+    rj, rx = _reports(tmp_path)
+    gone = tmp_path / "gone.json"
+    assert main(["verify", str(model), str(good), str(gone), "--probes", "100", "--report-json", str(rj),
+                 "--junit", str(rx)]) == 2
+    err = capsys.readouterr().err
+    assert "gone.json" in err and "not found" in err and "Traceback" not in err
+    doc = json.loads(rj.read_text())
+    _valid(doc)
+    assert doc["error"]["exit_code"] == 2
+    assert {a["path"]: a["verdict"] for a in doc["artefacts"]} == {str(good): "pass", str(gone): "fail"}
+    assert ("open", True, False) in _junit_cases(rx)
 
 
 @pytest.mark.parametrize("which", ["model", "data"])

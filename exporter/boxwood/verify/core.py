@@ -9,6 +9,8 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
+from boxwood_runtime import ArtefactError
+
 from ..contract import Outputs
 from ..formats import Artefact, open_artefact
 from ..ir import Ensemble
@@ -133,8 +135,10 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
     kind. ``probes``: the most generated probe rows (0: none). ``seed``: for the random
     rows. ``progress``: a progress bar on stderr (None: only on a terminal).
     ``bad_artefacts``: "raise" (an artefact that cannot be opened raises ValueError/OSError)
-    or "report" (it becomes a failing ``open`` check with the reason, the others are
-    verified, and ``result.error`` is set: what ``boxwood verify`` does, exit code 2).
+    or "report" (it becomes a failing ``open`` check with the reason and the others are
+    verified: what ``boxwood verify`` does; a damaged boxwood artefact is a failed check,
+    exit code 1, while a missing file or one of another kind also sets ``result.error``,
+    exit code 2).
 
     Raises ValueError / OSError for bad input (an unreadable model, artefact or data file,
     an unsupported model); a parity failure is a result with ``passed`` False, not an error.
@@ -150,6 +154,7 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
         raise ValueError("bad_artefacts must be 'raise' or 'report', got %r" % (bad_artefacts,))
     opened: List[Artefact] = []
     unopened: List[ArtefactReport] = []
+    bad_input: List[str] = []
     for p in paths:
         try:
             opened.append(open_artefact(p))
@@ -159,8 +164,14 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
             message = str(exc) or type(exc).__name__
             if str(p) not in message:
                 message = "%s: %s" % (p, message)
+            # A damaged boxwood artefact (digest, structure, version: ArtefactError) is a
+            # failed check, exit 1, as everywhere else; a missing file or a file of another
+            # kind is bad input, exit 2 (README, "Exit codes").
+            damaged = isinstance(exc, ArtefactError)
             unopened.append(ArtefactReport(str(p), "not opened", None, None, [
                 Check("open", str(p), None, "fail", "cannot open the artefact: " + message, [message])], []))
+            if not damaged:
+                bad_input.append(message)
     if getattr(source, "fields", None) is not None:
         # An artefact holding a pipeline's tree part only (boxwood's ONNX graphs) takes the
         # preprocessed features: evaluators that can, prepare the raw-field rows with the
@@ -240,8 +251,8 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
                   (None if data is None else type(data).__name__)},
         notes=notes,
     )
-    if unopened:
-        result.error = {"message": "; ".join(a.checks[0].details[0] for a in unopened), "exit_code": 2}
+    if bad_input:
+        result.error = {"message": "; ".join(bad_input), "exit_code": 2}
     result.seconds = time.perf_counter() - t0
     return result
 
