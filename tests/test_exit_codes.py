@@ -140,6 +140,16 @@ def test_missing_onnxruntime_exits_2_with_the_install_hint(files, tmp_path):
         assert 'pip install "boxwood[onnx]"' in proc.stderr and "Traceback" not in proc.stderr
         assert "ok" not in proc.stdout
     assert not (tmp_path / "new.onnx").exists()
+    # verify: exit 2 with the hint, and the reports it was asked for still exist and say why
+    report, junit = tmp_path / "v.json", tmp_path / "v.xml"
+    proc = subprocess.run([sys.executable, str(wrapper), "verify", str(tmp / "m.joblib"), str(tmp_path / "m.onnx"),
+                           "--probes", "50", "--report-json", str(report), "--junit", str(junit)],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2, proc.stderr
+    assert 'pip install "boxwood[onnx]"' in proc.stderr and "Traceback" not in proc.stderr
+    doc = json.loads(report.read_text())
+    assert doc["error"]["exit_code"] == 2 and 'boxwood[onnx]' in doc["error"]["message"]
+    assert "boxwood[onnx]" in junit.read_text()
     # planted fault for the wrapper itself: without the hiding finder the same call passes
     proc = subprocess.run([sys.executable, "-m", "boxwood", "inspect", str(tmp_path / "m.onnx")],
                           capture_output=True, text=True)

@@ -41,7 +41,7 @@ def read_model(model: Any) -> Ensemble:
         try:
             check_is_fitted(model)
         except NotFittedError:
-            raise UnsupportedModel("%s is not fitted; fit it before exporting" % type(model).__name__)
+            raise UnsupportedModel("%s is not fitted; fit it before exporting" % public_name(model))
     for read in READERS:
         ensemble = read(model)
         if ensemble is not None:
