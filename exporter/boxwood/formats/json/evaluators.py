@@ -28,7 +28,8 @@ class DeviceEvaluator(Evaluator):
         exact, outs, labels = [], [], []
         decide = m.task != "regression"
         for i, row in enumerate(rows):
-            raw = m.raw_scores(m.prepare(row, i))
+            # the hub's rows write NaN as None, as the source model reads them
+            raw = m.raw_scores(m.prepare([float("nan") if v is None else v for v in row], i))
             exact.append(m.exact_values(raw))
             outs.append(m.transform_raw(raw))
             if decide:
