@@ -391,6 +391,39 @@ def _get(obj, key, kind, where):
     return value
 
 
+_TENTHS = (1.0, 0.1, 0.01, 0.001, 0.0001, 0.00001, 0.000001, 0.0000001, 0.00000001, 0.000000001,
+           0.0000000001, 0.00000000001, 0.000000000001, 0.0000000000001, 0.00000000000001,
+           0.000000000000001)
+
+
+def json_float_15(text):
+    """A JSON number with a point or an exponent as pandas.read_json reads it by default
+    (``precise_float=False``: its vendored ujson): at most 15 fraction digits kept,
+    ``(int + frac * 10**-digits) * sign``, then ``* 10.0 ** exponent`` (C ``pow``)."""
+    sign = 1.0
+    if text[:1] == "-":
+        sign, text = -1.0, text[1:]
+    k = max(text.find("e"), text.find("E"))
+    exp, exp_sign = 0.0, 1.0
+    if k >= 0:
+        digits = text[k + 1:]
+        text = text[:k]
+        if digits[:1] in ("-", "+"):
+            exp_sign = -1.0 if digits[0] == "-" else 1.0
+            digits = digits[1:]
+        for ch in digits:
+            exp = exp * 10.0 + float(ord(ch) - 48)
+    whole, _, frac = text.partition(".")
+    value, n = 0.0, 0
+    for ch in frac[:15]:
+        value = value * 10.0 + float(ord(ch) - 48)
+        n += 1
+    value = (float(int(whole or "0")) + value * _TENTHS[n]) * sign
+    if k >= 0:
+        value = value * (10.0 ** (exp * exp_sign))
+    return value
+
+
 def _nan_for_null(row):
     """A reference row as the source model was given it: null (None) stands for NaN
     (the exporter writes NaN as null; a Python None is not written into rows)."""
@@ -470,10 +503,15 @@ class Model:
         version = self.format_version
         self._trim = version == 1
         self.null_text = "nan"
+        self.json_float = float  # how JSON Lines numbers with a point or exponent are read
         if version >= 2:
             self.null_text = _get(inputs, "null_text", str, "inputs")
             _need(self.null_text in ("nan", "none"), "inputs.null_text must be \"nan\" or \"none\"")
             _get(inputs, "text_reader", str, "inputs")
+            numbers = _get(inputs, "json_numbers", str, "inputs")
+            _need(numbers in ("exact", "15_decimals"), "inputs.json_numbers must be \"exact\" or \"15_decimals\"")
+            if numbers == "15_decimals":
+                self.json_float = json_float_15
         feats = _get(inputs, "features", list, "inputs")
         _need(0 < len(feats) <= limits["max_features"], "feature count out of bounds")
         self.feature_names = []

@@ -308,7 +308,7 @@ def _jsonl_rows(model, source, id_column, first):
             n += 1
             where = _where(n, line_no)
             try:
-                obj = json.loads(line)
+                obj = _loads(line, model.json_float)
             except (ValueError, RecursionError) as exc:
                 yield n, where, None, False, None, _message(where, None, "not valid JSON: %s" % (exc,))
                 continue
@@ -324,6 +324,17 @@ def _jsonl_rows(model, source, id_column, first):
             yield n, where, ident, has_id, model.record_from_json(obj, n), None
 
     return id_name, rows()
+
+
+def _loads(line, parse_float):
+    """One JSON value, its non-integer numbers read with ``parse_float`` (the artefact's
+    ``json_numbers``: as pandas.read_json reads them)."""
+    if parse_float is float:
+        return json.loads(line)
+    try:
+        return json.loads(line, parse_float=parse_float)
+    except TypeError:  # MicroPython's json.loads takes no options: numbers read exactly there
+        return json.loads(line)
 
 
 def _json_kind(value):

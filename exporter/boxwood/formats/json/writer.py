@@ -11,10 +11,11 @@ from __future__ import annotations
 
 import functools
 import math
+import struct
 from pathlib import Path
 from typing import Any, Dict, Union
 
-from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes
+from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes, json_float_15
 
 from ...ir import Ensemble
 
@@ -33,7 +34,9 @@ def _text_reading() -> Dict[str, Any]:
     ``STR_NA_VALUES``), compared with the cell exactly as written (no trimming: pandas
     keeps " south " and " NA " as they are). ``null_text``: what ``pandas.read_json(...,
     lines=True)`` makes of a JSON null in a column of strings ("nan" from pandas 3 on,
-    "none" before), found by asking pandas. Both are checked against pandas itself.
+    "none" before), found by asking pandas. ``json_numbers``: "15_decimals" when
+    ``pandas.read_json`` reads numbers as its default ujson parser does (see
+    ``scorer.json_float_15``), "exact" when correctly rounded. Both are checked against pandas itself.
     """
     import io
 
@@ -53,7 +56,18 @@ def _text_reading() -> Dict[str, Any]:
     null_text = "none" if null is None else "nan"
     if null_text == "nan" and not (isinstance(null, float) and math.isnan(null)):
         raise RuntimeError("pandas %s reads a JSON null in a string column as %r" % (pd.__version__, null))
-    return {"missing_tokens": tokens, "null_text": null_text, "text_reader": "pandas %s" % pd.__version__}
+    # JSON numbers: pandas' default reader keeps 15 fraction digits (ujson); later ones may not
+    probes = ["0.12345678901234567", "-0.045472477940023646", "123.456789012345678e-3", "2.5E+10", "0.1"]
+    got = pd.read_json(io.StringIO("".join('{"c":%s}\n' % p for p in probes)), lines=True)["c"].tolist()
+    numbers = None
+    for name, parse in (("exact", float), ("15_decimals", json_float_15)):
+        if all(struct.pack("<d", float(g)) == struct.pack("<d", parse(p)) for g, p in zip(got, probes)):
+            numbers = name
+            break
+    if numbers is None:
+        raise RuntimeError("pandas %s reads JSON numbers in a way boxwood does not know" % pd.__version__)
+    return {"missing_tokens": tokens, "null_text": null_text, "json_numbers": numbers,
+            "text_reader": "pandas %s" % pd.__version__}
 
 
 def number(v: float) -> Union[float, str]:
@@ -112,6 +126,10 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         "accepts_infinity": ensemble.accepts_infinity,
     }
     inputs.update(text_reading())
+    if ensemble.fields is None:
+        # a model fitted on an array has no DataFrame reader behind it: JSON numbers exact
+        # (as json.loads reads them); a pipeline's raw fields are read as pandas reads them
+        inputs["json_numbers"] = "exact"
     if ensemble.fields is not None:
         inputs["fields"] = list(ensemble.fields)
     outputs: Dict[str, Any] = {
