@@ -51,7 +51,7 @@ class BatchEvaluator(Evaluator):
 
     def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
         b = self.batch
-        raw = b.raw_scores(b.prepare([list(r) for r in rows]))
+        raw = b.raw_scores(b.prepare([[float("nan") if v is None else v for v in r] for r in rows]))  # None: NaN
         labels = None
         if b.model.task != "regression":
             labels = [b.model.classes[i] for i in b.class_index(raw).tolist()]
