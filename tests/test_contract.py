@@ -47,7 +47,9 @@ def _raw_rows(device, case):
     """Raw scores of the device on the case's rows, plus synthetic raw rows that sit on the
     contract's edges: exact zeros (the binary rules differ there), ties between classes
     (the first of equal maxima wins), and values far outside exp's range."""
-    rows = [device.raw_scores(device.prepare(r, i)) for i, r in enumerate(case.rows[:300])]
+    # the zoo's rows write NaN as None; the device reads a None in a text field as Python None
+    rows = [device.raw_scores(device.prepare([float("nan") if v is None else v for v in r], i))
+            for i, r in enumerate(case.rows[:300])]
     k = len(rows[0])
     rows += [[0.0] * k, [-0.0] * k, [5e-324] * k, [1.0] * k, [800.0] * k, [-800.0] * k]
     if k > 1:

@@ -154,7 +154,7 @@ def test_schema_is_valid_draft_2020_12():
     # Outside reference: the draft 2020-12 metaschema, as shipped in `jsonschema`.
     Draft202012Validator.check_schema(schema)
     assert schema["$schema"] == "https://json-schema.org/draft/2020-12/schema"
-    assert schema["$id"] == "https://boxwood.invalid/schemas/tree-ensemble-1.schema.json"
+    assert schema["$id"] == "https://boxwood.invalid/schemas/tree-ensemble-2.schema.json"
     assert schema["title"].strip() and schema["description"].strip()
     # The metaschema check is not vacuous: it rejects a schema with a bad keyword value.
     broken = copy.deepcopy(schema)
@@ -303,7 +303,7 @@ def _one_base_value(doc):
 NEGATIVE = [
     # (id, zoo case, mutation returning the JSON path the violation must be reported at)
     ("missing_format", "hgbr_categorical", _drop(None, "format")),
-    ("format_version_2", "hgbr_categorical", lambda d: (d.update(format_version=2), "$.format_version")[1]),
+    ("format_version_3", "hgbr_categorical", lambda d: (d.update(format_version=3), "$.format_version")[1]),
     ("format_version_as_text", "gbr_squared_error", lambda d: (d.update(format_version="1"), "$.format_version")[1]),
     ("threshold_abc", "hgbr_categorical", _set_threshold("abc")),
     ("threshold_nan_text", "gbr_squared_error", _set_threshold("nan")),
@@ -410,7 +410,7 @@ def test_digest_shell_recipe_in_docs_works(name, tmp_path):
     stated, computed = out[0], out[1]
     assert stated == computed == json.loads(artefact(name))["boxwood_digest"][len("sha256:"):]
     # A changed byte in the body changes what the recipe computes (it hashes the body).
-    tampered = artefact(name).replace(b'"format_version":1', b'"format_version":2')
+    tampered = artefact(name).replace(b'"format_version":2', b'"format_version":3')
     (tmp_path / "model.json").write_bytes(tampered)
     out = subprocess.run(["bash", "-euo", "pipefail", "-c", blocks[0]], cwd=tmp_path,
                          capture_output=True, text=True, check=True).stdout.split()

@@ -61,11 +61,13 @@ class Feature:
     # Where the value comes from when the ensemble carries preprocessing: the raw record
     # field ``source["field"]`` (a name in ``Ensemble.fields``) passed through the steps
     # ``source["steps"]`` in order. Each step is a dict:
-    #   {"op": "impute", "value": v}: a missing value (None/NaN) becomes v;
+    #   {"op": "impute", "value": v, ["replaces": "nan" | "none"]}: the value the imputer
+    #    treats as missing (NaN, the default, or Python None) becomes v;
     #   {"op": "encode", "categories": [...], "unknown": "error" | number | None,
-    #    ["missing": number | None]}: a value becomes float(its index in categories);
-    #    a missing value becomes "missing" when that key is present (None = NaN), else
-    #    it counts as unknown; an unknown value is an error or becomes "unknown".
+    #    ["missing": number | None], ["none": number]}: a value becomes float(its index
+    #    in categories); NaN becomes "missing" when that key is present (None = NaN), a
+    #    Python None becomes "none" when present (its fitted code); else they count as
+    #    unknown; an unknown value is an error or becomes "unknown".
     source: Optional[Dict[str, Any]] = None
 
     @property
@@ -232,9 +234,10 @@ def _check_source(f: Feature, fields: Optional[List[str]]) -> None:
     for step in src["steps"]:
         op = step.get("op")
         if op == "impute":
-            ok = set(step) == {"op", "value"} and isinstance(step["value"], (int, float, str))
+            ok = (set(step) - {"replaces"} == {"op", "value"} and isinstance(step["value"], (int, float, str))
+                  and step.get("replaces", "nan") in ("nan", "none"))
         elif op == "encode":
-            ok = (set(step) - {"missing"} == {"op", "categories", "unknown"}
+            ok = (set(step) - {"missing", "none"} == {"op", "categories", "unknown"}
                   and isinstance(step["categories"], list) and step["categories"]
                   and (step["unknown"] in ("error", None) or isinstance(step["unknown"], float)))
         else:

@@ -25,7 +25,7 @@ import math
 import struct
 
 FORMAT_NAME = "boxwood.tree-ensemble"
-FORMAT_VERSIONS = (1,)
+FORMAT_VERSIONS = (1, 2)  # 1: text trimmed, None = NaN; 2: text read as pandas does
 SCORER_VERSION = "0.1.0"
 DIGEST_KEY = "boxwood_digest"
 _DIGEST_PREFIX = b'{"' + DIGEST_KEY.encode() + b'":"sha256:'
@@ -391,6 +391,73 @@ def _get(obj, key, kind, where):
     return value
 
 
+_TENTHS = (1.0, 0.1, 0.01, 0.001, 0.0001, 0.00001, 0.000001, 0.0000001, 0.00000001, 0.000000001,
+           0.0000000001, 0.00000000001, 0.000000000001, 0.0000000000001, 0.00000000000001,
+           0.000000000000001)
+
+
+def json_float_15(text):
+    """A JSON number with a point or an exponent as pandas.read_json reads it by default
+    (``precise_float=False``: its vendored ujson): at most 15 fraction digits kept,
+    ``(int + frac * 10**-digits) * sign``, then ``* 10.0 ** exponent`` (C ``pow``)."""
+    sign = 1.0
+    if text[:1] == "-":
+        sign, text = -1.0, text[1:]
+    k = max(text.find("e"), text.find("E"))
+    exp, exp_sign = 0.0, 1.0
+    if k >= 0:
+        digits = text[k + 1:]
+        text = text[:k]
+        if digits[:1] in ("-", "+"):
+            exp_sign = -1.0 if digits[0] == "-" else 1.0
+            digits = digits[1:]
+        for ch in digits:
+            exp = exp * 10.0 + float(ord(ch) - 48)
+    whole, _, frac = text.partition(".")
+    value, n = 0.0, 0
+    for ch in frac[:15]:
+        value = value * 10.0 + float(ord(ch) - 48)
+        n += 1
+    value = (float(int(whole or "0")) + value * _TENTHS[n]) * sign
+    if k >= 0:
+        value = value * (10.0 ** (exp * exp_sign))
+    return value
+
+
+def _nan_for_null(row):
+    """A reference row as the source model was given it: null (None) stands for NaN
+    (the exporter writes NaN as null; a Python None is not written into rows)."""
+    if isinstance(row, list):
+        return [_NAN if v is None else v for v in row]
+    return row
+
+
+_DIGITS = "0123456789"
+_INFINITIES = ("inf", "infinity")
+
+
+def _number_text(text):
+    """A CSV cell as ``pandas.read_csv`` reads a number column: spaces and tabs around
+    it, an optional sign, then digits with an optional point (``1.``, ``.5``) and an
+    optional exponent (``1e3``, ``2E-4``), or inf / infinity in any case. Anything
+    else (``1_000``, ``0x10``, ``1,5``, other scripts' digits, which Python's float()
+    takes) is a ValueError, as pandas then reads the whole column as text."""
+    body = text.strip(" \t")
+    core = body[1:] if body[:1] in ("+", "-") else body
+    if core.lower() in _INFINITIES:
+        return _INF if body[:1] != "-" else -_INF
+    e = max(core.find("e"), core.find("E"))
+    mant, exp = (core[:e], core[e + 1:]) if e >= 0 else (core, None)
+    whole, _, frac = mant.partition(".")
+    ok = bool(whole or frac) and not whole.strip(_DIGITS) and not frac.strip(_DIGITS)
+    if exp is not None:
+        exp = exp[1:] if exp[:1] in ("+", "-") else exp
+        ok = ok and bool(exp) and not exp.strip(_DIGITS)
+    if not ok:
+        raise ValueError("not a number: %r" % (text,))
+    return float(body)
+
+
 def _number(value, where):
     """A JSON number, or one of the strings "inf" / "-inf", as a float."""
     if isinstance(value, str) and value in _NONFINITE:
@@ -413,6 +480,7 @@ class Model:
         _need(version in FORMAT_VERSIONS, "format_version %r is not one this scorer (%s) reads; it reads %s"
               % (version, SCORER_VERSION, ", ".join(str(v) for v in FORMAT_VERSIONS)))
         self.doc = doc
+        self.format_version = version
         self.unknown_category = unknown_category
         self.task = _get(doc, "task", str, "artefact")
         _need(self.task in ("regression", "classification", "outlier_detection"), "unknown task %r" % self.task)
@@ -430,6 +498,20 @@ class Model:
         tokens = _get(inputs, "missing_tokens", list, "inputs")
         _need(all(isinstance(t, str) for t in tokens), "inputs.missing_tokens must be strings")
         self.missing_tokens = set(tokens)  # set, not frozenset: some MicroPython builds lack frozenset
+        # Version 1: cells trimmed, None and NaN alike. Version 2: cells as written, and
+        # JSON null in a text field read as the exporting pandas reads it ("nan"/"none").
+        version = self.format_version
+        self._trim = version == 1
+        self.null_text = "nan"
+        self.json_float = float  # how JSON Lines numbers with a point or exponent are read
+        if version >= 2:
+            self.null_text = _get(inputs, "null_text", str, "inputs")
+            _need(self.null_text in ("nan", "none"), "inputs.null_text must be \"nan\" or \"none\"")
+            _get(inputs, "text_reader", str, "inputs")
+            numbers = _get(inputs, "json_numbers", str, "inputs")
+            _need(numbers in ("exact", "15_decimals"), "inputs.json_numbers must be \"exact\" or \"15_decimals\"")
+            if numbers == "15_decimals":
+                self.json_float = json_float_15
         feats = _get(inputs, "features", list, "inputs")
         _need(0 < len(feats) <= limits["max_features"], "feature count out of bounds")
         self.feature_names = []
@@ -457,14 +539,14 @@ class Model:
             self._codes.append(codes)
         _need(len(set(self.feature_names)) == len(self.feature_names), "feature names repeat")
         self.n_features = len(self.feature_names)
-        self._read_preprocessing(inputs, feats, limits)
+        self._read_preprocessing(inputs, feats, limits, self.format_version)
 
     @property
     def preprocesses(self):
         """True when records carry raw fields that preprocessing steps turn into the features."""
         return self._sources is not None
 
-    def _read_preprocessing(self, inputs, feats, limits):
+    def _read_preprocessing(self, inputs, feats, limits, version):
         """Raw record fields and each feature's source steps (a scikit-learn Pipeline's
         preprocessing), or, without "fields", records that hold the features themselves.
 
@@ -510,7 +592,11 @@ class Model:
                     _need(isinstance(value, (str, int, float)) and not isinstance(value, bool),
                           "%s.value must be a number or a string" % at)
                     textual[fi] = textual[fi] or isinstance(value, str)
-                    steps.append(("impute", value))
+                    replaces = "both"  # version 1: None and NaN alike
+                    if version >= 2:
+                        replaces = _get(step, "replaces", str, at)
+                        _need(replaces in ("nan", "none"), "%s.replaces must be \"nan\" or \"none\"" % at)
+                    steps.append(("impute", value, replaces))
                     continue
                 _need(op == "encode", "%s.op %r is not a step this scorer knows" % (at, op))
                 cats = _get(step, "categories", list, at)
@@ -533,7 +619,13 @@ class Model:
                                                        and not isinstance(missing, bool)),
                       "%s.missing must be a number or null" % at)
                 missing = missing if missing == "unknown" else (_NAN if missing is None else float(missing))
-                steps.append(("encode", codes, unknown, missing, cats))
+                none = missing  # version 1: None as NaN
+                if version >= 2:
+                    none = step.get("none", "unknown")
+                    _need(none == "unknown" or (isinstance(none, (int, float)) and not isinstance(none, bool)),
+                          "%s.none must be a number" % at)
+                    none = none if none == "unknown" else float(none)
+                steps.append(("encode", codes, unknown, missing, cats, none))
                 self._unseen_missing[j] = True
             self._sources.append((fi, tuple(steps)))
         self._known_text = [set(k) for k in known]  # set: some MicroPython builds lack frozenset
@@ -725,15 +817,25 @@ class Model:
         """Feature ``j``'s value: its source field's value passed through its steps."""
         fi, steps = self._sources[j]
         v = values[fi]
+        if v is None and not self._textual[fi]:
+            v = _NAN  # a number column: pandas holds None as NaN
         for step in steps:
-            missing = v is None or (isinstance(v, float) and v != v)
+            is_none = v is None
+            is_nan = isinstance(v, float) and v != v
+            missing = is_none or is_nan
             if step[0] == "impute":
-                if missing:
+                replaces = step[2]
+                if replaces == "none" and is_nan:  # SimpleImputer(missing_values=None) refuses NaN
+                    raise RecordError(row, self._label[j], "NaN, which an imputer for None does not accept")
+                if (is_nan and replaces != "none") or (is_none and replaces != "nan"):
                     v = step[1]
                 continue
-            _, codes, unknown, missing_code, cats = step
-            if missing and missing_code != "unknown":
+            _, codes, unknown, missing_code, cats, none_code = step
+            if is_nan and missing_code != "unknown":
                 v = missing_code
+                continue
+            if is_none and none_code != "unknown":
+                v = none_code
                 continue
             if not missing and (isinstance(v, bool) or not isinstance(v, (str, int, float))):
                 raise RecordError(row, self._label[j], "expected a category value, got %s" % type(v).__name__)
@@ -743,8 +845,10 @@ class Model:
                 continue
             if unknown == "error":
                 shown = ", ".join(repr(c) for c in cats[:20])
-                what = "a missing value, which the encoder was not fitted to accept" if missing else (
-                    "unknown category %r" % (v,))
+                what = "unknown category %r" % (v,)
+                if missing:
+                    what = "a missing value (%s), which the encoder was not fitted to accept" % (
+                        "None" if is_none else "NaN")
                 raise RecordError(row, self._label[j], "%s (known: %s%s)" % (what, shown, ", ..." if len(cats) > 20
                                                                               else ""))
             v = unknown
@@ -791,7 +895,15 @@ class Model:
         return _NAN
 
     def record_from_text(self, fields, row=None):
-        """Turn a dict of strings (a CSV row) into a record: numbers parsed, missing tokens to None."""
+        """Turn a dict of strings (a CSV row) into a record as ``pandas.read_csv`` reads it.
+
+        Version 2 artefacts: a cell equal to one of ``missing_tokens`` as written (no
+        trimming) is NaN; a text field (one whose categories or imputed value are
+        strings) keeps every other cell as the exact string, spaces and all, even when
+        it looks like a number; any other field takes a number in pandas' grammar
+        (spaces and tabs around it, a sign, digits with an optional point, an exponent,
+        inf/infinity in any case). Version 1 artefacts: cells trimmed, missing tokens
+        are None."""
         record = {}
         for i, name in enumerate(self.input_names):
             if not self._used[i]:
@@ -799,21 +911,38 @@ class Model:
             if name not in fields:
                 raise RecordError(row, name, "the column is absent")
             text = fields[name]
-            if text is None or text.strip() in self.missing_tokens:
-                record[name] = None
+            if self._trim:
+                if text is None or text.strip() in self.missing_tokens:
+                    record[name] = None
+                    continue
+                text = text.strip()
+                if text in self._known_text[i]:
+                    record[name] = text
+                    continue
+            elif text is None or text in self.missing_tokens:
+                record[name] = _NAN
                 continue
-            text = text.strip()
-            if text in self._known_text[i]:
+            elif self._textual[i]:
                 record[name] = text
                 continue
             try:
-                if "_" in text:  # float() takes "1_000"; a CSV cell should not
-                    raise ValueError(text)
-                record[name] = float(text)
+                record[name] = _number_text(text)
             except ValueError:
                 if not (self._textual[i] or (self._sources is None and self.categories[i] is not None)):
                     raise RecordError(row, name, "expected a number, got %r" % text)
                 record[name] = text  # an unknown category; prepare() decides what happens
+        return record
+
+    def record_from_json(self, obj, row=None):
+        """A JSON Lines object as ``pandas.read_json(..., lines=True)`` gives it: numbers
+        and strings as they are, null as NaN, except in a text field when the exporting
+        pandas reads null there as None (``inputs.null_text``). Other keys are kept."""
+        if self._trim or self._sources is None:
+            return obj  # None means missing for the trees alike
+        record = dict(obj)
+        for i, name in enumerate(self.input_names):
+            if name in record and record[name] is None:
+                record[name] = None if (self._textual[i] and self.null_text == "none") else _NAN
         return record
 
     # -- scoring -----------------------------------------------------------------
@@ -862,10 +991,25 @@ class Model:
 
         For boosted models these are the raw scores (scikit-learn's
         ``decision_function``, or ``predict`` before the inverse link); for AdaBoost and
-        isolation forests scikit-learn's ``decision_function``; for probability-averaging
-        classifiers (trees, forests) the class probabilities.
+        isolation forests scikit-learn's ``decision_function``. Trees and forests have
+        none in scikit-learn: a TypeError (see :attr:`has_decision_function`).
         """
+        if not self.has_decision_function:
+            raise TypeError("decision_function is not defined for this model (scikit-learn's trees and "
+                            "forests have none); use predict or predict_proba")
         return self._apply(records, self._decision_out)
+
+    @property
+    def has_decision_function(self):
+        """False for averaged trees and forests and for single trees, which have no
+        decision_function in scikit-learn: probability-averaging classifiers, and
+        regressors made of one tree per output with zero base values."""
+        if self.task == "outlier_detection" or self.post_transform not in ("identity",):
+            return True
+        if self.combine == "mean" or self.task == "classification":
+            return False
+        one_tree = all(len(t) <= 1 for t in self.trees_per_output)
+        return not (one_tree and not any(self.base_values) and self.compare_precision == "float32")
 
     def score_samples(self, records):
         """Isolation forests: scikit-learn's ``score_samples`` (lower is more abnormal)."""
@@ -902,6 +1046,11 @@ class Model:
         if self.post_transform == "samme":
             return samme_decision(raw, self.post_transform_params["weight_total"])
         return list(raw)
+
+    @property
+    def n_exact_values(self):
+        """How many values :meth:`exact_values` returns per record."""
+        return len(self.exact_values([0.0] * self.n_outputs))
 
     def _decision_out(self, raw):
         d = self.decision_values(raw)
@@ -949,7 +1098,7 @@ class Model:
         try:
             for r, row in enumerate(rows):
                 try:
-                    got = self.raw_scores(self.prepare(row, r))
+                    got = self.raw_scores(self.prepare(_nan_for_null(row), r))
                 except RecordError as exc:
                     return False, "reference %s" % (exc,)
                 want = [_number(v, "self_check.raw") for v in raws[r]]

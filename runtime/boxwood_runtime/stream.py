@@ -16,15 +16,20 @@ What it promises:
 * Input formats: CSV with a header row, or JSON Lines (one JSON object per line).
   With ``fmt="auto"`` the first non-blank character decides: ``{`` means JSON Lines,
   anything else CSV. The output format is the input format unless ``out_fmt`` says.
-* CSV cells are read with :meth:`Model.record_from_text` (the artefact lists the
-  cell texts that mean "missing"); JSON objects go to :meth:`Model.prepare` as
-  they are (``null`` means missing; other keys are ignored).
+* CSV cells are read with :meth:`Model.record_from_text`, as ``pandas.read_csv``
+  reads them (the artefact lists the exact cell texts that mean "missing"; no
+  trimming; numbers in pandas' grammar; text fields keep their strings). The
+  separator is ``delimiter`` (default ``,``). JSON objects go through
+  :meth:`Model.record_from_json`, as ``pandas.read_json(..., lines=True)`` gives them
+  (``null`` is missing as pandas makes it; other keys are ignored).
 * Output columns: the id (see below), then the outputs, then ``error``.
   Regression: one column per output name (``model.output_names``) holding the
   prediction. Classification: ``label`` (the predicted class), then
   ``proba_<class>`` for each class in the artefact's class order. Outlier detection
   (isolation forests): ``label`` (-1 outlier, 1 inlier), ``score`` (score_samples)
   and ``decision`` (decision_function).
+  With ``raw_scores=True`` the exact values (:meth:`Model.exact_values`, what must
+  match the source bit for bit) follow, one column ``raw_<i>`` per value.
   Floats are written with ``repr`` (JSON Lines: as JSON numbers, which Python also
   writes with ``repr``), so they read back to the same bits. A non-finite output
   is written as the string ``inf`` / ``-inf`` / ``nan`` (JSON has no infinity).
@@ -44,6 +49,9 @@ What it promises:
 * Problems with the stream as a whole raise :class:`StreamError` before any row
   is written: an unknown format name, a CSV header that lacks a feature column or
   the requested id column, or that repeats a column that is used.
+
+``progress``, when given, is called with the number of rows done after every
+``progress_every`` rows (default 10000).
 
 The result is ``Counts(rows, scored, errors, first_error)``: rows read, rows
 scored, error rows, and the message of the first error row (or None).
@@ -72,6 +80,8 @@ DEFAULT_ID = "id"
 ERROR_COLUMN = "error"
 LABEL_COLUMN = "label"
 PROBA_PREFIX = "proba_"
+RAW_PREFIX = "raw_"
+PROGRESS_EVERY = 10000
 
 Counts = namedtuple("Counts", ["rows", "scored", "errors", "first_error"])
 
@@ -80,8 +90,10 @@ class StreamError(ValueError):
     """The stream as a whole cannot be scored (bad format name, unusable CSV header)."""
 
 
-def output_columns(model):
+def output_columns(model, raw_scores=False):
     """The output column names for ``model`` (without the id and error columns)."""
+    if raw_scores:
+        return output_columns(model) + [RAW_PREFIX + str(i) for i in range(model.n_exact_values)]
     if model.task == "classification":
         return [LABEL_COLUMN] + [PROBA_PREFIX + str(c) for c in model.classes]
     if model.task == "outlier_detection":
@@ -89,34 +101,39 @@ def output_columns(model):
     return [str(n) for n in model.output_names]
 
 
-def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=None):
+def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=None, delimiter=",",
+                 raw_scores=False, progress=None, progress_every=PROGRESS_EVERY):
     """Score every row of ``infile`` and write one output row per input row to ``outfile``.
 
     ``infile`` is any iterable of text lines (an open text file, ``sys.stdin``, a
     generator); open files with ``newline=""`` so that CSV cells keep their line
-    breaks. ``outfile`` needs a ``write`` method. Returns :data:`Counts`.
+    breaks. ``outfile`` needs a ``write`` method. ``delimiter`` separates CSV cells
+    (input and CSV output); ``raw_scores`` adds the exact values; ``progress(rows)``
+    is called every ``progress_every`` rows. Returns :data:`Counts`.
     """
+    if progress is not None and not (isinstance(progress_every, int) and progress_every > 0):
+        raise StreamError("progress_every must be a positive whole number, got %r" % (progress_every,))
     if out_fmt is not None and out_fmt not in OUTPUT_FORMATS:
         raise StreamError("unknown output format %r; expected one of %s"
                           % (out_fmt, ", ".join(OUTPUT_FORMATS)))
     if csv is None and out_fmt == "csv":
         raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
                           "use JSON Lines")
-    fmt, id_name, rows, first = read_records(model, infile, fmt, id_column)
-    values = output_columns(model)
+    fmt, id_name, rows, first = read_records(model, infile, fmt, id_column, delimiter)
+    values = output_columns(model, raw_scores)
     if id_name is not None and (id_name in values or id_name == ERROR_COLUMN):
         raise StreamError("the id column %r has the name of an output column (%s)"
                           % (id_name, ", ".join(values + [ERROR_COLUMN])))
     out_fmt = out_fmt or fmt
     # JSON Lines into JSON Lines without id_column: copy "id" on each row that has one.
     per_row = fmt == "jsonl" and out_fmt == "jsonl" and id_column is None
-    writer = _Writer(out_fmt, outfile, DEFAULT_ID if per_row else id_name, values, per_row)
+    writer = _Writer(out_fmt, outfile, DEFAULT_ID if per_row else id_name, values, per_row, delimiter)
     n_rows = n_scored = n_errors = 0
     first_error = None
     for n, where, ident, has_id, record, error in rows:
         result = None
         if error is None:
-            result, error = _score(model, record, n, where)
+            result, error = _score(model, record, n, where, raw_scores)
         if n_rows == 0:
             writer.start()
         n_rows += 1
@@ -127,6 +144,8 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
             if first_error is None:
                 first_error = error
         writer.row(ident, has_id, result, error)
+        if progress is not None and n_rows % progress_every == 0:
+            progress(n_rows)
     if n_rows == 0 and first is not None and fmt == "csv":
         writer.start()  # a header and no data rows: still write the output header
     if hasattr(outfile, "flush"):
@@ -134,7 +153,7 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     return Counts(n_rows, n_scored, n_errors, first_error)
 
 
-def read_records(model, infile, fmt="auto", id_column=None):
+def read_records(model, infile, fmt="auto", id_column=None, delimiter=","):
     """Read records from CSV (with a header) or JSON Lines, lazily, for ``model``.
 
     Returns ``(fmt, id_name, rows, first)``: the format read, the id column in use (or
@@ -142,8 +161,12 @@ def read_records(model, infile, fmt="auto", id_column=None):
     (``n`` counts data rows from 1, ``where`` says "row n (line l)", ``record`` is a
     dict ready for :meth:`Model.prepare`, or None when ``error`` says why the row could
     not be read), and the first non-blank input line (None for empty input). Raises
-    :class:`StreamError` when the stream as a whole is unusable.
+    :class:`StreamError` when the stream as a whole is unusable. ``delimiter`` is the
+    CSV cell separator (one character).
     """
+    if not (isinstance(delimiter, str) and len(delimiter) == 1 and delimiter not in "\r\n\"{"):
+        raise StreamError("the delimiter must be one character other than a quote, a brace or a line break, "
+                          "got %r" % (delimiter,))
     if fmt not in FORMATS:
         raise StreamError("unknown input format %r; expected one of %s" % (fmt, ", ".join(FORMATS)))
     lines = iter(infile)
@@ -163,14 +186,14 @@ def read_records(model, infile, fmt="auto", id_column=None):
                           "use JSON Lines")
     source = chain(head, lines)
     if fmt == "csv":
-        id_name, rows = _csv_rows(model, source, id_column)
+        id_name, rows = _csv_rows(model, source, id_column, delimiter)
     else:
         id_name, rows = _jsonl_rows(model, source, id_column, first)
     return fmt, id_name, rows, first
 
 
 # ----------------------------------------------------------------------------- scoring
-def _score(model, record, n, where):
+def _score(model, record, n, where, raw_scores=False):
     """Score one record; return (outputs, None) or (None, error message)."""
     try:
         raw = model.raw_scores(model.prepare(record, n))
@@ -178,6 +201,13 @@ def _score(model, record, n, where):
         return None, _message(where, exc.field, exc.reason)
     except OverflowError as exc:  # e.g. a JSON integer too large for a float
         return None, _message(where, None, "a number is out of range: %s" % (exc,))
+    if raw_scores:
+        result, error = _score_values(model, raw)
+        return result + list(model.exact_values(raw)), error
+    return _score_values(model, raw)
+
+
+def _score_values(model, raw):
     if model.task == "classification":
         return [model.classes[model.class_index(raw)]] + list(model.proba_from_raw(raw)), None
     if model.task == "outlier_detection":
@@ -196,9 +226,9 @@ def _where(n, line):
     return "row %d (line %d)" % (n, line)
 
 
-def _csv_rows(model, source, id_column):
+def _csv_rows(model, source, id_column, delimiter=","):
     """Read the header now; return (id column name or None, generator of row results)."""
-    reader = csv.reader(source)
+    reader = csv.reader(source, delimiter=delimiter)
     header = None
     for cells in reader:
         if cells:
@@ -278,7 +308,7 @@ def _jsonl_rows(model, source, id_column, first):
             n += 1
             where = _where(n, line_no)
             try:
-                obj = json.loads(line)
+                obj = _loads(line, model.json_float)
             except (ValueError, RecursionError) as exc:
                 yield n, where, None, False, None, _message(where, None, "not valid JSON: %s" % (exc,))
                 continue
@@ -291,9 +321,20 @@ def _jsonl_rows(model, source, id_column, first):
             if id_column is not None and not has_id:
                 yield n, where, None, False, None, _message(where, id_column, "the id field is absent")
                 continue
-            yield n, where, ident, has_id, obj, None
+            yield n, where, ident, has_id, model.record_from_json(obj, n), None
 
     return id_name, rows()
+
+
+def _loads(line, parse_float):
+    """One JSON value, its non-integer numbers read with ``parse_float`` (the artefact's
+    ``json_numbers``: as pandas.read_json reads them)."""
+    if parse_float is float:
+        return json.loads(line)
+    try:
+        return json.loads(line, parse_float=parse_float)
+    except TypeError:  # MicroPython's json.loads takes no options: numbers read exactly there
+        return json.loads(line)
 
 
 def _json_kind(value):
@@ -312,13 +353,13 @@ def _json_kind(value):
 class _Writer:
     """Writes the output rows in CSV or JSON Lines."""
 
-    def __init__(self, fmt, outfile, id_name, values, per_row):
+    def __init__(self, fmt, outfile, id_name, values, per_row, delimiter=","):
         self.out = outfile
         self.id_name = id_name  # None: no id column
         self.values = values
         self.per_row = per_row  # JSON output: write the id only on rows whose input had it
         self.started = False
-        self.csv = csv.writer(outfile, lineterminator="\n") if fmt == "csv" else None
+        self.csv = csv.writer(outfile, lineterminator="\n", delimiter=delimiter) if fmt == "csv" else None
 
     def start(self):
         if self.started:

@@ -74,14 +74,13 @@ def main(argv=None):
         error(str(exc))
         return 1
     except BrokenPipeError:
-        # The reader of our output went away (e.g. piped into head): stop quietly.
+        # The reader of our output went away (e.g. piped into head): stop quietly, exit 0.
         try:
             devnull = os.open(os.devnull, os.O_WRONLY)
             os.dup2(devnull, sys.stdout.fileno())
         except (OSError, ValueError, AttributeError, io.UnsupportedOperation):
             pass
-        error("the output was closed before all rows were written")
-        return 2
+        return 0  # as Unix filters do when the reader has all it wants (e.g. "| head -1")
     except (ValueError, OSError) as exc:
         # ArtefactError, RecordError, UnsupportedModel, StreamError and UsageError are
         # ValueErrors; a missing or unreadable file is an OSError.

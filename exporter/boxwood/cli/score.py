@@ -1,6 +1,7 @@
 """``boxwood score``: stream a CSV or JSON Lines file through an artefact with the device scorer."""
 import os
 import sys
+import time
 
 from .common import PROG, UsageError, load_artefact, text_input, text_output
 
@@ -25,6 +26,11 @@ def add(commands):
     p.add_argument("--unknown-category", choices=("error", "as_missing"), default="error",
                    help="a category the model never saw: an error row, or treated as missing "
                         "as scikit-learn does (default: %(default)s)")
+    p.add_argument("--delimiter", metavar="CHAR", default=",",
+                   help="CSV cell separator, one character (default: ','; use $'\\t' for tabs)")
+    p.add_argument("--raw-scores", action="store_true",
+                   help="add the exact values (raw_0, raw_1, ...: what must match the source bit for bit) "
+                        "as columns, for diffs in CI")
     p.set_defaults(func=run)
 
 
@@ -37,13 +43,25 @@ def run(args):
     if ("-" not in (args.input, args.output) and os.path.exists(args.output)
             and os.path.samefile(args.input, args.output)):
         raise UsageError("the output %r is the input file; write to another file" % args.output)
+    progress = None
+    if sys.stderr.isatty():
+        def progress(rows):
+            sys.stderr.write("\r%s: %d rows" % (PROG, rows))
+            sys.stderr.flush()
+    start = time.perf_counter()
     try:
         with text_input(args.input) as src, text_output(args.output) as dst:
-            counts = score_stream(model, src, dst, fmt=args.format, id_column=args.id_column)
+            counts = score_stream(model, src, dst, fmt=args.format, id_column=args.id_column,
+                                  delimiter=args.delimiter, raw_scores=args.raw_scores, progress=progress)
     except UnicodeDecodeError as exc:
         raise UsageError("the input is not UTF-8 text: %s" % exc)
+    seconds = time.perf_counter() - start
+    if progress is not None and counts.rows >= 10000:
+        sys.stderr.write("\r")
+    rate = counts.rows / seconds if seconds > 0 else float("inf")
     if counts.errors:
         print("%s: scored %d rows, %d errors (first: %s)" % (PROG, counts.rows, counts.errors,
                                                               counts.first_error), file=sys.stderr)
         return 2
+    print("%s: scored %d rows, 0 errors, %.0f rows per second" % (PROG, counts.rows, rate), file=sys.stderr)
     return 0

@@ -8,9 +8,16 @@ steps (see ``ir.Feature.source``). The reader follows the columns through:
   fitted), transformers that are supported steps, nested Pipelines of them,
   "passthrough" and "drop", and the remainder;
 - SimpleImputer (constant, mean, median, most_frequent; numeric and string columns;
-  no indicator columns): a missing value becomes the fitted statistic;
+  no indicator columns): the value it was told is missing becomes the fitted
+  statistic. Each step records which one (``"replaces": "nan"`` or ``"none"``):
+  scikit-learn compares object columns with ``missing_values`` itself, so with the
+  default NaN a Python None passes through unchanged (and with None, NaN is refused);
 - OrdinalEncoder (categories as fitted; handle_unknown "error" or
-  "use_encoded_value"; encoded_missing_value): a value becomes its code;
+  "use_encoded_value"; encoded_missing_value): a value becomes its code. NaN and
+  None are told apart as scikit-learn does: a NaN seen in fitting becomes
+  ``encoded_missing_value`` (``"missing"``), a None seen in fitting is an ordinary
+  category with its own code (``"none"``); either one not seen in fitting is an
+  unknown category;
 - feature selection steps (any fitted selector with ``get_support``) that only drop
   columns;
 - "passthrough" steps.
@@ -72,7 +79,8 @@ def _apply(step: Any, columns: List[Program], where: str) -> List[Program]:
         if step.add_indicator:
             raise _unsupported(step, where, "add_indicator=True adds columns")
         if not is_nan(step.missing_values) and step.missing_values is not None:
-            raise _unsupported(step, where, "missing_values other than NaN")
+            raise _unsupported(step, where, "missing_values other than NaN or None")
+        replaces = "none" if step.missing_values is None else "nan"
         stats = list(step.statistics_)
         if len(stats) != len(columns):
             raise _unsupported(step, where, "it was fitted on %d columns, %d arrive" % (len(stats), len(columns)))
@@ -81,7 +89,7 @@ def _apply(step: Any, columns: List[Program], where: str) -> List[Program]:
             value = plain(value)
             if value is None or is_nan(value):
                 raise _unsupported(step, where, "column %r was all missing in training and is dropped" % field)
-            out.append((field, steps + [{"op": "impute", "value": value}]))
+            out.append((field, steps + [{"op": "impute", "value": value, "replaces": replaces}]))
         return out
     if isinstance(step, OrdinalEncoder):
         if step.max_categories is not None or step.min_frequency is not None:
@@ -90,9 +98,15 @@ def _apply(step: Any, columns: List[Program], where: str) -> List[Program]:
         for (field, steps), cats in zip(columns, step.categories_):
             values = [plain(c) for c in cats]
             op: Dict[str, Any] = {"op": "encode"}
-            if values and is_nan(values[-1]) or (values and values[-1] is None):
-                values = values[:-1]  # NaN is listed last when training saw missing values
+            # scikit-learn lists None, then NaN, after the other categories when fitting saw them
+            if values and is_nan(values[-1]):
+                values = values[:-1]  # NaN becomes encoded_missing_value
                 op["missing"] = _number_or_nan(step.encoded_missing_value)
+            if values and values[-1] is None:
+                values = values[:-1]  # None keeps its own code, like any category
+                op["none"] = float(len(values))
+            if any(v is None or is_nan(v) for v in values):
+                raise _unsupported(step, where, "column %r lists None or NaN among its categories" % field)
             op["categories"] = values
             if step.handle_unknown == "use_encoded_value":
                 op["unknown"] = _number_or_nan(step.unknown_value)

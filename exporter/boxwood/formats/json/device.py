@@ -51,7 +51,7 @@ def feature_preparer(ensemble: Ensemble) -> Callable[..., List[Any]]:
     feats = ensemble.features
 
     def prepare(record: Sequence[Any], row: int = 0) -> List[Any]:
-        x = model.prepare(list(record), row)
+        x = model.prepare([float("nan") if v is None else v for v in record], row)  # None: NaN
         out: List[Any] = []
         for f, v in zip(feats, x):
             if v != v:

@@ -28,7 +28,8 @@ class DeviceEvaluator(Evaluator):
         exact, outs, labels = [], [], []
         decide = m.task != "regression"
         for i, row in enumerate(rows):
-            raw = m.raw_scores(m.prepare(row, i))
+            # the hub's rows write NaN as None, as the source model reads them
+            raw = m.raw_scores(m.prepare([float("nan") if v is None else v for v in row], i))
             exact.append(m.exact_values(raw))
             outs.append(m.transform_raw(raw))
             if decide:
@@ -50,7 +51,7 @@ class BatchEvaluator(Evaluator):
 
     def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
         b = self.batch
-        raw = b.raw_scores(b.prepare([list(r) for r in rows]))
+        raw = b.raw_scores(b.prepare([[float("nan") if v is None else v for v in r] for r in rows]))  # None: NaN
         labels = None
         if b.model.task != "regression":
             labels = [b.model.classes[i] for i in b.class_index(raw).tolist()]

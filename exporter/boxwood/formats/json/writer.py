@@ -1,4 +1,4 @@
-"""Write the boxwood JSON artefact (format version 1).
+"""Write the boxwood JSON artefact (format version 2).
 
 The layout is documented by schemas/tree-ensemble.schema.json and the page
 docs/artefact-format.md. The file is the canonical JSON of the document (keys
@@ -9,17 +9,65 @@ they read back to the same bits. Infinite thresholds are written as the strings
 """
 from __future__ import annotations
 
+import functools
 import math
+import struct
 from pathlib import Path
 from typing import Any, Dict, Union
 
-from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes
+from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes, json_float_15
 
 from ...ir import Ensemble
 
-FORMAT_VERSION = 1
-# CSV cells (after trimming spaces) that mean "missing"; JSON null and NaN do too.
-MISSING_TOKENS = ["", "NA", "NaN", "nan", "null"]
+FORMAT_VERSION = 2
+
+
+def text_reading() -> Dict[str, Any]:
+    return dict(_text_reading())
+
+
+@functools.lru_cache(maxsize=None)
+def _text_reading() -> Dict[str, Any]:
+    """How the workstation reads text, taken from the pandas in use (not typed here).
+
+    ``text_reader`` names it. ``missing_tokens``: the cells ``pandas.read_csv`` reads as NaN by default (its
+    ``STR_NA_VALUES``), compared with the cell exactly as written (no trimming: pandas
+    keeps " south " and " NA " as they are). ``null_text``: what ``pandas.read_json(...,
+    lines=True)`` makes of a JSON null in a column of strings ("nan" from pandas 3 on,
+    "none" before), found by asking pandas. ``json_numbers``: "15_decimals" when
+    ``pandas.read_json`` reads numbers as its default ujson parser does (see
+    ``scorer.json_float_15``), "exact" when correctly rounded. Both are checked against pandas itself.
+    """
+    import io
+
+    import pandas as pd
+
+    try:
+        from pandas._libs.parsers import STR_NA_VALUES
+    except ImportError:  # older layouts re-export it from the reader module
+        from pandas.io.parsers.readers import STR_NA_VALUES  # type: ignore
+    tokens = sorted(str(t) for t in STR_NA_VALUES)
+    probe = "c\n" + "\n".join('"%s"' % t for t in tokens) + "\n"
+    read = pd.read_csv(io.StringIO(probe), keep_default_na=True)["c"]
+    if len(read) != len(tokens) or not read.isna().all():
+        raise RuntimeError("pandas %s does not read its own STR_NA_VALUES as missing" % pd.__version__)
+    col = pd.read_json(io.StringIO('{"c":"x"}\n{"c":null}\n'), lines=True)["c"]
+    null = col.iloc[1]
+    null_text = "none" if null is None else "nan"
+    if null_text == "nan" and not (isinstance(null, float) and math.isnan(null)):
+        raise RuntimeError("pandas %s reads a JSON null in a string column as %r" % (pd.__version__, null))
+    # JSON numbers: pandas' default reader keeps 15 fraction digits (ujson); later ones may not
+    probes = ["0.12345678901234567", "-0.045472477940023646", "123.456789012345678e-3", "2.5E+10", "0.1"]
+    got = pd.read_json(io.StringIO("".join('{"c":%s}\n' % p for p in probes)), lines=True)["c"].tolist()
+    numbers = None
+    for name, parse in (("exact", float), ("15_decimals", json_float_15)):
+        if all(struct.pack("<d", float(g)) == struct.pack("<d", parse(p)) for g, p in zip(got, probes)):
+            numbers = name
+            break
+    if numbers is None:
+        raise RuntimeError("pandas %s reads JSON numbers in a way boxwood does not know" % pd.__version__)
+    return {"missing_tokens": tokens, "null_text": null_text, "json_numbers": numbers,
+            "text_reader": "pandas %s" % pd.__version__}
 
 
 def number(v: float) -> Union[float, str]:
@@ -39,7 +87,10 @@ def _cell(v: Any) -> Any:
 
 def _step(step: Dict[str, Any]) -> Dict[str, Any]:
     """A preprocessing step as JSON: NaN (the encoder's NaN outputs) written as null."""
-    return {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in step.items()}
+    out = {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in step.items()}
+    if out["op"] == "impute":
+        out.setdefault("replaces", "nan")  # scikit-learn's default missing_values
+    return out
 
 
 def to_document(ensemble: Ensemble) -> Dict[str, Any]:
@@ -73,8 +124,12 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         "compare_precision": ensemble.compare_precision,
         "missing_values": ensemble.missing_values,
         "accepts_infinity": ensemble.accepts_infinity,
-        "missing_tokens": list(MISSING_TOKENS),
     }
+    inputs.update(text_reading())
+    if ensemble.fields is None:
+        # a model fitted on an array has no DataFrame reader behind it: JSON numbers exact
+        # (as json.loads reads them); a pipeline's raw fields are read as pandas reads them
+        inputs["json_numbers"] = "exact"
     if ensemble.fields is not None:
         inputs["fields"] = list(ensemble.fields)
     outputs: Dict[str, Any] = {
