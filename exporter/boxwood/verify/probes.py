@@ -198,7 +198,7 @@ def _read_file_both_ways(path: Path, model: Any, names: List[str], out: Rows) ->
         raise ValueError("the data file %r is not UTF-8 text: %s" % (str(path), exc))
     except StreamError as exc:
         raise ValueError("the data file %r: %s" % (str(path), exc))
-    frame, call = _workstation_frame(path, fmt)
+    frame, call = _workstation_frame(path, fmt, exact_json=getattr(model, "json_float", float) is float)
     lacking = [f for f in names if f not in frame.columns]
     if lacking:
         raise ValueError("pandas reads no column %s from the data file %r (it reads: %s)" % (
@@ -235,18 +235,20 @@ def _read_file_both_ways(path: Path, model: Any, names: List[str], out: Rows) ->
     out.reading = reading
 
 
-def _workstation_frame(path: Path, fmt: str) -> Tuple[Any, str]:
-    """The data file as the workstation reads it: pandas' defaults, as a user would call them."""
+def _workstation_frame(path: Path, fmt: str, exact_json: bool) -> Tuple[Any, str]:
+    """The data file as the workstation reads it, as the artefact says the workstation reads
+    text: ``pandas.read_csv`` with its defaults; for JSON Lines ``pandas.read_json(lines=True)``
+    with its default float parser (not correctly rounded: it keeps 15 fraction digits; the
+    artefact's ``inputs.json_numbers`` is "15_decimals", as for pipelines) or with
+    ``precise_float=True`` (correctly rounded, as Python's float(); ``json_numbers`` "exact")."""
     import pandas as pd
 
     try:
         if fmt == "jsonl":
-            # precise_float=True: pandas' default JSON float parser is not correctly rounded
-            # (it reads 0.0514740612 one ulp off; tests/test_verify_data.py shows it), while
-            # read_csv's default and the box's float() are. A workstation that scores JSON
-            # Lines should pass it too (README, "Verify in CI").
-            return (pd.read_json(path, lines=True, precise_float=True),
-                    "pandas.read_json(lines=True, precise_float=True)")
+            if exact_json:
+                return (pd.read_json(path, lines=True, precise_float=True),
+                        "pandas.read_json(lines=True, precise_float=True)")
+            return pd.read_json(path, lines=True), "pandas.read_json(lines=True)"
         return pd.read_csv(path), "pandas.read_csv"
     except (ValueError, pd.errors.ParserError) as exc:
         raise ValueError("pandas cannot read the data file %r: %s" % (str(path), exc))
