@@ -1,6 +1,7 @@
 """The exit-code table (README.md, "Exit codes") and the one-line error messages, each row
 tried as a new user would. Models: scikit-learn's diabetes data set (sklearn.datasets,
 shipped with scikit-learn); expected numbers come from scikit-learn's own predict."""
+import io
 import json
 import os
 import shutil
@@ -10,6 +11,7 @@ from pathlib import Path
 
 import joblib
 import numpy as np
+import pandas as pd
 import pytest
 from sklearn.datasets import load_diabetes
 from sklearn.ensemble import HistGradientBoostingRegressor
@@ -171,12 +173,15 @@ def test_csv_header_and_example_jsonl_are_accepted_by_score(files, capsys, tmp_p
     code, example, _ = run(["inspect", tmp / "m.json", "--example-jsonl"], capsys)
     record = json.loads(example)
     assert code == 0 and list(record) == ["x0", "x1", "x2", "x3"]
-    want = model.predict(np.array([[record[k] for k in record]]))[0]  # scikit-learn's own prediction
+    # scikit-learn's own prediction on the workstation's reading of the same text (pandas: the
+    # artefact of a pipeline reads JSON numbers as pandas.read_json's default parser does)
+    want = model.predict(pd.read_json(io.StringIO(example), lines=True)[list(record)])[0]
     out = _score(tmp / "m.json", example, tmp_path, "ex.jsonl")
     assert json.loads(out)["prediction"] == want if "prediction" in json.loads(out) else \
         float([v for k, v in json.loads(out).items() if k not in ("error", "id")][0]) == want
     row = ",".join(repr(float(record[k])) for k in record)
     out = _score(tmp / "m.json", header + row + "\n", tmp_path, "ex.csv")
+    want = model.predict(pd.read_csv(io.StringIO(header + row + "\n")))[0]
     assert float(out.splitlines()[1].split(",")[0]) == want
     code, text, _ = run(["inspect", tmp / "m.json"], capsys)
     assert "x0" in text and "impute" in text and "-> feature x0" in text

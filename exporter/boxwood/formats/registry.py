@@ -11,6 +11,7 @@ in its error. Picking a format:
 """
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Dict, List, Optional, Tuple, Union
@@ -166,6 +167,46 @@ def for_file(path: PathLike, what: str = "artefact") -> Format:
     if fmt is None:
         raise FormatError("%r is not an artefact of any known format (%s)" % (str(p), known()))
     return fmt
+
+
+_DIGEST_KEY = b'"boxwood_digest"'
+
+
+def file_kind(path, head_bytes=4096):
+    """What the file at ``path`` is, from its content: one of "folder", "missing",
+    "json-artefact" (a JSON object carrying a boxwood digest), "json" (another JSON
+    document), "jsonl" (JSON Lines data), "csv" (delimited text data), "text", "zip",
+    "pickle" (pickle or joblib), or the name of a registered artefact format
+    ("onnx", ...) whose sniff recognises it; "unknown" otherwise."""
+    if os.path.isdir(path):
+        return "folder"
+    if not os.path.exists(path):
+        return "missing"
+    with open(path, "rb") as fh:
+        head = fh.read(head_bytes)
+    body = head.lstrip()
+    if head[:4] == b"PK\x03\x04":
+        return "zip"
+    if body[:1] == b"{":
+        if _DIGEST_KEY in head:
+            return "json-artefact"
+        lines = [line for line in body.splitlines() if line.strip()]
+        if len(lines) > 1 and all(line.lstrip()[:1] == b"{" and line.rstrip()[-1:] == b"}" for line in lines[:-1]):
+            return "jsonl"
+        return "json"
+    if head[:1] == b"\x80" or head[:2] in (b"\x1f\x8b", b"BZ") or head[:2] in (b"\x78\x01", b"\x78\x5e", b"\x78\x9c", b"\x78\xda") or head[:6] == b"\xfd7zXZ\x00":
+        return "pickle"  # pickle protocol 2+ or a joblib compression header (zlib, gzip, bz2, xz)
+    for fmt in FORMATS.values():
+        if fmt.name != "json" and fmt.sniff is not None and fmt.sniff(head):
+            return fmt.name
+    if b"\x00" not in head:
+        try:
+            text = head.decode("utf-8")
+        except UnicodeDecodeError:
+            return "unknown"
+        first = text.splitlines()[0] if text.strip() else ""
+        return "csv" if any(d in first for d in ",;\t") else "text"
+    return "unknown"
 
 
 def open_artefact(path: PathLike) -> Artefact:

@@ -13,6 +13,7 @@ from boxwood_runtime import ArtefactError
 
 from ..contract import Outputs
 from ..formats import Artefact, open_artefact
+from ..formats.registry import file_kind
 from ..ir import Ensemble
 from ..sources import load_model_file, read_model
 from ..sources.model import SourceEvaluator
@@ -164,10 +165,10 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
             message = str(exc) or type(exc).__name__
             if str(p) not in message:
                 message = "%s: %s" % (p, message)
-            # A damaged boxwood artefact (digest, structure, version: ArtefactError) is a
-            # failed check, exit 1, as everywhere else; a missing file or a file of another
-            # kind is bad input, exit 2 (README, "Exit codes").
-            damaged = isinstance(exc, ArtefactError)
+            # A damaged boxwood artefact (it carries a digest, but the digest, structure or
+            # version fails: ArtefactError) is a failed check, exit 1, as everywhere else; a
+            # missing file or a file of another kind is bad input, exit 2 (README, "Exit codes").
+            damaged = isinstance(exc, ArtefactError) and file_kind(p) == "json-artefact"
             unopened.append(ArtefactReport(str(p), "not opened", None, None, [
                 Check("open", str(p), None, "fail", "cannot open the artefact: " + message, [message])], []))
             if not damaged:
