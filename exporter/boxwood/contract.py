@@ -108,6 +108,7 @@ class OutputContract:
         self.n_outputs = ensemble.n_outputs
         self.classes = list(ensemble.classes) if ensemble.classes is not None else None
         self.binary_rule = ensemble.binary_rule
+        self.softmax_sum = ensemble.softmax_sum
 
     # -- widths --------------------------------------------------------------------
     @property
@@ -141,7 +142,7 @@ class OutputContract:
         return raw
 
     def transformed(self, raw: np.ndarray) -> np.ndarray:
-        return transform(self.post_transform, _matrix(raw), self.params)
+        return transform(self.post_transform, _matrix(raw), self.params, self.softmax_sum)
 
     def positive_class(self, probabilities: np.ndarray) -> np.ndarray:
         """Class probabilities (n, n_classes) as transformed outputs: a one-score binary
@@ -186,17 +187,24 @@ def samme_decision(raw: np.ndarray, weight_total: float) -> np.ndarray:
     return (-d[:, 0] + d[:, 1])[:, None] if d.shape[1] == 2 else d
 
 
-def softmax(z: np.ndarray) -> np.ndarray:
-    """Softmax per row: shift by the row maximum, exp, add left to right, divide."""
+def softmax(z: np.ndarray, order: str = "sequential") -> np.ndarray:
+    """Softmax per row: shift by the row maximum, exp, add, divide. ``order`` says how the
+    exponentials are added: "sequential", left to right; "pairwise", as numpy.sum adds a
+    contiguous row (scikit-learn's utils.extmath.softmax does that sum)."""
     e = np.exp(z - z.max(axis=1, keepdims=True))
-    total = e[:, 0].copy()
-    for k in range(1, e.shape[1]):
-        total += e[:, k]
+    if order == "pairwise":
+        total = np.ascontiguousarray(e).sum(axis=1)
+    else:
+        total = e[:, 0].copy()
+        for k in range(1, e.shape[1]):
+            total += e[:, k]
     return e / total[:, None]
 
 
-def transform(name: str, raw: np.ndarray, params: Optional[Dict[str, float]] = None) -> np.ndarray:
-    """Apply the post-transform ``name`` to raw scores (n, K); return a new array."""
+def transform(name: str, raw: np.ndarray, params: Optional[Dict[str, float]] = None,
+              softmax_sum: str = "sequential") -> np.ndarray:
+    """Apply the post-transform ``name`` to raw scores (n, K); return a new array.
+    ``softmax_sum``: how a softmax adds its exponentials (see :func:`softmax`)."""
     raw = _matrix(raw)
     with np.errstate(over="ignore"):
         if name == "identity":
@@ -208,12 +216,12 @@ def transform(name: str, raw: np.ndarray, params: Optional[Dict[str, float]] = N
         if name == "logistic_double":  # the exponential loss: logistic(2 v)
             return 1.0 / (1.0 + np.exp(-(2.0 * raw)))
         if name == "softmax":
-            return softmax(raw)
+            return softmax(raw, softmax_sum)
         if name == "samme":  # softmax of the decision scaled by 1 / (K - 1)
             d = samme_decision(raw, params["weight_total"])
             if d.shape[1] == 1:
-                return softmax(np.column_stack([-d[:, 0] / 2, d[:, 0] / 2]))
-            return softmax(d / (d.shape[1] - 1))
+                return softmax(np.column_stack([-d[:, 0] / 2, d[:, 0] / 2]), softmax_sum)
+            return softmax(d / (d.shape[1] - 1), softmax_sum)
         if name == "isolation":  # score_samples: -(2 ** -(path length sum / denominator))
             den = params["denominator"]
             q = raw / den if den != 0.0 else np.ones_like(raw)

@@ -36,6 +36,11 @@ POST_TRANSFORMS = ("identity", "exp", "logistic", "logistic_double", "softmax", 
 TRANSFORM_PARAMS = {"samme": ("weight_total",), "isolation": ("denominator", "offset")}
 # Classifiers whose raw scores hold one value per class even for two classes.
 PER_CLASS_TRANSFORMS = ("identity", "softmax", "samme")
+# How a softmax (softmax, samme) adds its exponentials: "sequential", left to right (the
+# histogram boosters' own loop), or "pairwise", the order numpy.sum takes along a row
+# (scikit-learn's utils.extmath.softmax: classic boosting, AdaBoost); they differ in the
+# last bits from 8 classes on.
+SOFTMAX_SUMS = ("sequential", "pairwise")
 # How a binary classifier turns its raw score into the positive class.
 BINARY_RULES = ("raw_gt_0", "raw_ge_0")
 
@@ -149,6 +154,7 @@ class Ensemble:
     output_names: List[str] = field(default_factory=list)
     accepts_infinity: bool = True
     post_transform_params: Dict[str, float] = field(default_factory=dict)
+    softmax_sum: str = "sequential"  # one of SOFTMAX_SUMS (used by softmax and samme)
     # Raw record fields, when the ensemble carries preprocessing (a scikit-learn Pipeline);
     # then every feature has a ``source``. None: records hold the features themselves.
     fields: Optional[List[str]] = None
@@ -173,6 +179,7 @@ class Ensemble:
         _one_of("combine", self.combine, COMBINES)
         _one_of("compare_precision", self.compare_precision, PRECISIONS)
         _one_of("missing_values", self.missing_values, MISSING_POLICIES)
+        _one_of("softmax_sum", self.softmax_sum, SOFTMAX_SUMS)
         if not self.features:
             raise ModelError("the ensemble has no input features")
         names = [f.name for f in self.features]

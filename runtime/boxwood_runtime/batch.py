@@ -311,7 +311,7 @@ class BatchModel:
     def transform_raw(self, raw):
         """The post-transformed outputs for raw scores (n, n_outputs), as the scorer's ``transform_raw``."""
         m = self.model
-        return transform(m.post_transform, raw, m.post_transform_params)
+        return transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
 
     def decision_function(self, X):
         """Decision values (raw scores for boosted models): shape (n,) or (n, K)."""
@@ -339,7 +339,7 @@ class BatchModel:
         m = self.model
         if m.task != "classification":
             raise TypeError("predict_proba is for classifiers; this model does %s" % m.task)
-        p = transform(m.post_transform, self.raw_scores(self.prepare(X)), m.post_transform_params)
+        p = transform(m.post_transform, self.raw_scores(self.prepare(X)), m.post_transform_params, m.softmax_sum)
         if p.shape[1] == 1:
             return np.column_stack([1.0 - p[:, 0], p[:, 0]])
         return p
@@ -364,15 +364,17 @@ def samme_decision(raw, weight_total):
     return (-d[:, 0] + d[:, 1])[:, None] if d.shape[1] == 2 else d
 
 
-def _softmax(z):
+def _softmax(z, order="sequential"):
     e = np.exp(z - z.max(axis=1, keepdims=True))
+    if order == "pairwise":  # numpy's own row sum, as scikit-learn's extmath.softmax adds
+        return e / np.ascontiguousarray(e).sum(axis=1)[:, None]
     total = e[:, 0].copy()
     for k in range(1, e.shape[1]):  # left to right, as the scorer adds
         total += e[:, k]
     return e / total[:, None]
 
 
-def transform(name, raw, params=None):
+def transform(name, raw, params=None, softmax_sum="sequential"):
     """Apply a post-transform to raw scores of shape (n, K); return a new (n, K) array."""
     raw = np.asarray(raw, dtype=np.float64)
     with np.errstate(over="ignore"):
@@ -385,12 +387,12 @@ def transform(name, raw, params=None):
         if name == "logistic_double":
             return 1.0 / (1.0 + np.exp(-(2.0 * raw)))
         if name == "softmax":
-            return _softmax(raw)
+            return _softmax(raw, softmax_sum)
         if name == "samme":
             d = samme_decision(raw, params["weight_total"])
             if d.shape[1] == 1:
-                return _softmax(np.column_stack([-d[:, 0] / 2, d[:, 0] / 2]))
-            return _softmax(d / (d.shape[1] - 1))
+                return _softmax(np.column_stack([-d[:, 0] / 2, d[:, 0] / 2]), softmax_sum)
+            return _softmax(d / (d.shape[1] - 1), softmax_sum)
         if name == "isolation":  # numpy's power, as scikit-learn's score_samples
             den = params["denominator"]
             q = raw / den if den != 0.0 else np.ones_like(raw)

@@ -89,6 +89,7 @@ def read_gradient_boosting(model: Any) -> Ensemble:
         trees=trees,
         base_values=base,
         post_transform=post,
+        softmax_sum="pairwise",  # predict_proba: sklearn.utils.extmath.softmax, numpy's row sum
         combine="sum",
         compare_precision="float32",
         missing_values="reject",

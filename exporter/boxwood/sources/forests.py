@@ -186,6 +186,10 @@ def read_adaboost(model: Any) -> Ensemble:
         trees=trees,
         base_values=[0.0] * k,
         post_transform="samme",
+        # predict_proba: sklearn.utils.extmath.softmax of the decision, which AdaBoost builds
+        # column-major (np.where on a transposed mask); numpy then sums a row column after
+        # column, left to right (tests/test_many_classes.py: bit-identical on 10 classes)
+        softmax_sum="sequential",
         post_transform_params={"weight_total": weight_total},
         combine="sum",
         compare_precision="float32",

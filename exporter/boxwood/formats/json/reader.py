@@ -59,6 +59,7 @@ def from_document(doc: Dict[str, Any]) -> Ensemble:
         missing_values=inputs["missing_values"],
         classes=outputs.get("classes"),
         binary_rule=outputs.get("binary_rule"),
+        softmax_sum=outputs.get("softmax_sum", "sequential"),
         output_names=list(outputs["names"]),
         accepts_infinity=inputs["accepts_infinity"],
         fields=inputs.get("fields"),

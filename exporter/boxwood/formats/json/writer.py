@@ -140,6 +140,8 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         outputs["classes"] = list(ensemble.classes)
     if ensemble.binary_rule is not None:
         outputs["binary_rule"] = ensemble.binary_rule
+    if ensemble.post_transform in ("softmax", "samme"):
+        outputs["softmax_sum"] = ensemble.softmax_sum
     if ensemble.post_transform_params:
         outputs["post_transform_params"] = {k: number(v) for k, v in sorted(ensemble.post_transform_params.items())}
     doc: Dict[str, Any] = {

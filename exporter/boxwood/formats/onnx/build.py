@@ -320,6 +320,7 @@ def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, varia
         "post_transform": ensemble.post_transform,
         "classes": ensemble.classes,
         "binary_rule": ensemble.binary_rule,
+        "softmax_sum": ensemble.softmax_sum,
         "output_names": list(ensemble.output_names),
         "leading_base_trees": leading_base_trees,
         "category_code_offset": CODE_OFFSET,

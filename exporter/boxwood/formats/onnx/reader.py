@@ -595,6 +595,10 @@ def read_onnx(source: Any) -> Ensemble:
         output_names=[str(o) for o in output_names],
         accepts_infinity=bool(semantics.get("accepts_infinity", True)) if exact_source else True,
         post_transform_params=dict(info.get("params") or {}),
+        # how the source adds a softmax's exponentials (boxwood's metadata; a graph made
+        # elsewhere does not say: its Softmax op adds in the runtime's own order)
+        softmax_sum=semantics.get("softmax_sum") if semantics.get("softmax_sum") in ("sequential", "pairwise")
+        else "sequential",
         provenance=provenance,
     )
     ref = meta.get("boxwood.reference")
