@@ -425,6 +425,40 @@ def test_summary_line_and_quiet_closed_pipe(artefacts, tmp_path):
     assert "error" not in piped.stderr and "Traceback" not in piped.stderr, piped.stderr
 
 
+def test_progress_line_only_on_a_terminal(artefacts, tmp_path):
+    """On a terminal (a pseudo-terminal from the standard library's pty module stands in for
+    one) stderr shows a progress count every 10,000 rows, then the summary; into a pipe or
+    file it shows the summary alone (test above)."""
+    pty = pytest.importorskip("pty")
+    case, artefact = artefacts["pipe_hgbr_encoded"]
+    rows = pd.concat([case.X] * 50)  # 22,100 rows: two progress updates
+    path = tmp_path / "many.csv"
+    rows.to_csv(path, index=False)
+    master, slave = pty.openpty()
+    try:
+        done = subprocess.run([sys.executable, "-m", "boxwood", "score", str(artefact), str(path), "-o",
+                               str(tmp_path / "out.csv")], stderr=slave, stdout=subprocess.DEVNULL, timeout=300)
+        os.close(slave)
+        slave = None
+        seen = b""
+        while True:
+            try:
+                chunk = os.read(master, 4096)
+            except OSError:  # Linux: EIO once the other side is closed and drained
+                break
+            if not chunk:
+                break
+            seen += chunk
+    finally:
+        if slave is not None:
+            os.close(slave)
+        os.close(master)
+    text = seen.decode()
+    assert done.returncode == 0, text
+    assert "boxwood: 10000 rows" in text and "boxwood: 20000 rows" in text, text
+    assert re.search(r"boxwood: scored %d rows, 0 errors, [0-9]+ rows per second" % len(rows), text), text
+
+
 # --------------------------------------------------------------------- decision_function
 @pytest.mark.parametrize("name", ["rfr", "rfc_binary", "dtr_single", "dtc_multiclass", "etr_single_tree",
                                   "pipe_rfr_constant_impute"])
