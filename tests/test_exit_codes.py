@@ -175,13 +175,13 @@ def test_csv_header_and_example_jsonl_are_accepted_by_score(files, capsys, tmp_p
     assert code == 0 and list(record) == ["x0", "x1", "x2", "x3"]
     # scikit-learn's own prediction on the workstation's reading of the same text (pandas: the
     # artefact of a pipeline reads JSON numbers as pandas.read_json's default parser does)
-    want = model.predict(pd.read_json(io.StringIO(example), lines=True)[list(record)])[0]
+    want = model.predict(pd.read_json(io.StringIO(example), lines=True)[list(record)].to_numpy())[0]
     out = _score(tmp / "m.json", example, tmp_path, "ex.jsonl")
     assert json.loads(out)["prediction"] == want if "prediction" in json.loads(out) else \
         float([v for k, v in json.loads(out).items() if k not in ("error", "id")][0]) == want
     row = ",".join(repr(float(record[k])) for k in record)
     out = _score(tmp / "m.json", header + row + "\n", tmp_path, "ex.csv")
-    want = model.predict(pd.read_csv(io.StringIO(header + row + "\n")))[0]
+    want = model.predict(pd.read_csv(io.StringIO(header + row + "\n")).to_numpy())[0]
     assert float(out.splitlines()[1].split(",")[0]) == want
     code, text, _ = run(["inspect", tmp / "m.json"], capsys)
     assert "x0" in text and "impute" in text and "-> feature x0" in text
