@@ -67,6 +67,11 @@ def test_bad_input_rows_exit_2_with_a_clear_line(files, capsys):
         (["export", tmp / "m.joblib", "-o", tmp], "is a folder"),
         (["inspect", tmp / "data.csv"], "expected a boxwood JSON artefact (.json) or an ONNX"),
         (["inspect", tmp / "m.onnx", "--csv-header"], "score takes"),
+        (["score", tmp / "m.json", tmp / "m.onnx"], "is an ONNX file; expected CSV with a header row or JSON Lines"),
+        (["score", tmp / "m.json", tmp / "m.joblib"], "is a joblib or pickle model file; expected CSV"),
+        (["score", tmp / "m.json", tmp / "m.json"], "is a boxwood JSON artefact; expected CSV"),
+        (["score", tmp / "m.json", tmp], "input %r is a folder" % str(tmp)),
+        (["score", tmp / "m.json", tmp / "absent.csv"], "input file %r not found" % str(tmp / "absent.csv")),
     ]
     for argv, needle in cases:
         code, _, err = run(argv, capsys)

@@ -3,7 +3,7 @@ import os
 import sys
 import time
 
-from .common import PROG, UsageError, load_artefact, text_input, text_output
+from .common import PROG, UsageError, existing_file, load_artefact, refuse_kind, text_input, text_output
 
 
 def add(commands):
@@ -38,8 +38,10 @@ def run(args):
     from boxwood_runtime.stream import score_stream
 
     model = load_artefact(args.artefact, unknown_category=args.unknown_category)
-    if args.input != "-" and not os.path.isfile(args.input):
-        raise UsageError("input file %r not found (or not a file)" % args.input)
+    if args.input != "-":
+        kind = existing_file(args.input, "input")  # a missing file or a folder: bad input
+        if kind not in ("csv", "jsonl", "json", "text"):  # a model, an artefact, a zip, ... is no data
+            refuse_kind(args.input, kind, "CSV with a header row or JSON Lines records to score")
     if ("-" not in (args.input, args.output) and os.path.exists(args.output)
             and os.path.samefile(args.input, args.output)):
         raise UsageError("the output %r is the input file; write to another file" % args.output)
