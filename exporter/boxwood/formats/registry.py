@@ -5,9 +5,9 @@ A format states what it can do; a capability it lacks is None and the registry s
 in its error. Picking a format:
 
 * for writing, by the name the user gave (``--format onnx``) or the output's extension;
-* for reading, by the file's content (each format's ``sniff`` looks at the first bytes),
-  then by its extension; a file that no format recognises is refused with the list of
-  known formats, never guessed at.
+* for reading, by its extension when the content agrees (each format's ``sniff`` looks
+  at the first bytes), else by the content; a file that no format recognises is refused
+  with the list of known formats, never guessed at.
 """
 from __future__ import annotations
 
@@ -15,6 +15,8 @@ import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Dict, List, Optional, Tuple, Union
+
+from boxwood_runtime.scorer import DIGEST_KEY
 
 from ..ir import Ensemble
 
@@ -139,11 +141,18 @@ def for_output(path: PathLike, name: Optional[str] = None) -> Format:
     return fmt
 
 
+def _recognising(head: bytes) -> Optional[Format]:
+    return next((f for f in FORMATS.values() if f.sniff is not None and f.sniff(head)), None)
+
+
+def _head(path: PathLike, size: int = SNIFF_BYTES) -> bytes:
+    with open(path, "rb") as fh:
+        return fh.read(size)
+
+
 def sniff(path: PathLike) -> Optional[Format]:
     """The format whose ``sniff`` recognises the first bytes of ``path``, or None."""
-    with open(path, "rb") as fh:
-        head = fh.read(SNIFF_BYTES)
-    return next((f for f in FORMATS.values() if f.sniff is not None and f.sniff(head)), None)
+    return _recognising(_head(path))
 
 
 def for_file(path: PathLike, what: str = "artefact") -> Format:
@@ -157,19 +166,17 @@ def for_file(path: PathLike, what: str = "artefact") -> Format:
         raise IsADirectoryError("%s %r is a folder, not a file" % (what, str(p)))
     if not p.exists():
         raise FileNotFoundError("%s file %r not found" % (what, str(p)))
-    with open(p, "rb") as fh:
-        head = fh.read(SNIFF_BYTES)
+    head = _head(p)
     named = by_extension(p)
     if named is not None and (named.sniff is None or named.sniff(head)):
         return named
-    shown = next((f for f in FORMATS.values() if f.sniff is not None and f.sniff(head)), None)
-    fmt = shown or named
+    fmt = _recognising(head) or named
     if fmt is None:
         raise FormatError("%r is not an artefact of any known format (%s)" % (str(p), known()))
     return fmt
 
 
-_DIGEST_KEY = b'"boxwood_digest"'
+_DIGEST_KEY = b'"%s"' % DIGEST_KEY.encode()  # the artefact's first key (boxwood_runtime.scorer)
 
 
 def file_kind(path, head_bytes=4096):
@@ -182,8 +189,7 @@ def file_kind(path, head_bytes=4096):
         return "folder"
     if not os.path.exists(path):
         return "missing"
-    with open(path, "rb") as fh:
-        head = fh.read(head_bytes)
+    head = _head(path, head_bytes)
     body = head.lstrip()
     if head[:4] == b"PK\x03\x04":
         return "zip"

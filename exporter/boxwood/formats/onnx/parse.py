@@ -5,8 +5,7 @@ tree operator. Shared by the reader (:mod:`.reader`), the evaluators and the che
 from __future__ import annotations
 
 import json
-from pathlib import Path
-from typing import Any, Dict, List, Optional, Sequence, Union
+from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
@@ -35,28 +34,6 @@ def onnx_module():
     import onnx
 
     return onnx
-
-
-def looks_like_onnx(path: Union[str, Path]) -> bool:
-    """True for a ``.onnx`` file, or a file whose bytes parse as an ONNX model with a graph.
-
-    Pickle and joblib files start with 0x80 or a compression header; an ONNX model
-    starts with field 1 (``ir_version``, tag byte 0x08)."""
-    path = Path(path)
-    if path.suffix.lower() == ".onnx":
-        return True
-    try:
-        with path.open("rb") as fh:
-            head = fh.read(1)
-    except OSError:
-        return False
-    if head != b"\x08":
-        return False
-    try:
-        model = _parse(path.read_bytes(), str(path))
-    except OnnxReadError:
-        return False
-    return len(model.graph.node) > 0
 
 
 def _parse(data: bytes, where: str) -> Any:

@@ -28,8 +28,7 @@ Loading and graph walking are in :mod:`.parse`; the evaluators that run a file a
 from __future__ import annotations
 
 import math
-from pathlib import Path
-from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -612,14 +611,3 @@ def read_onnx(source: Any) -> Ensemble:
         return ensemble.check()
     except ModelError as exc:
         raise OnnxReadError("%s does not make a valid tree ensemble: %s" % (where, exc))
-
-
-def read_file(path: Union[str, Path], reference_rows: int = 6) -> Ensemble:
-    """Read an ONNX file; make sure it carries reference rows (the source model's, from
-    boxwood metadata, else the hub's own scores on probe rows -- stated in provenance)."""
-    from ..json.device import attach_own_reference
-
-    ensemble = read_onnx(path)
-    if ensemble.reference is None:
-        attach_own_reference(ensemble, reference_rows)
-    return ensemble
