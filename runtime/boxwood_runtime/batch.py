@@ -68,11 +68,23 @@ class BatchModel:
     (n, K); ``predict`` (n,); ``predict_proba`` (n, K) with K the class count.
     """
 
-    def __init__(self, model):
+    def __init__(self, model, engine="numpy"):
+        """``engine``: "numpy" walks the trees with numpy; "c" with the model's C target built
+        by the machine's C compiler (boxwood_runtime.native: cached per artefact, a
+        NativeBuildError when no compiler is found). Both prepare input the same way and
+        give bit-identical raw scores."""
         if not isinstance(model, Model):
             raise TypeError("BatchModel needs a loaded boxwood_runtime.scorer.Model, got %s"
                             % type(model).__name__)
+        if engine not in ("numpy", "c"):
+            raise ValueError("engine must be \"numpy\" or \"c\", got %r" % (engine,))
         self.model = model
+        self.engine = engine
+        self._native = None
+        if engine == "c":
+            from .native import NativeEngine
+
+            self._native = NativeEngine(model)
         self.n_features = model.n_features
         self.feature_names = list(model.feature_names)
         self._n_categories = [None if c is None else len(c) for c in model.categories]
@@ -237,6 +249,8 @@ class BatchModel:
     # -- evaluation ------------------------------------------------------------------
     def raw_scores(self, X):
         """Raw scores, shape (n, n_outputs), for a matrix from :meth:`prepare`."""
+        if self._native is not None:
+            return self._native.raw_scores(X)
         n = X.shape[0]
         out = np.empty((n, len(self._plan)), dtype=np.float64)
         for start in range(0, n, BLOCK_ROWS):

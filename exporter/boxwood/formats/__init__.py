@@ -9,7 +9,7 @@ a target").
 """
 from .registry import (FORMATS, Artefact, Format, FormatError, MissingDependency, by_name, for_file, for_output,
                        open_artefact, register, unregister)
-from . import json, onnx  # noqa: E402,F401  (each registers itself)
+from . import c, json, onnx  # noqa: E402,F401  (each registers itself)
 
 __all__ = ["FORMATS", "Artefact", "Format", "FormatError", "MissingDependency", "by_name", "for_file",
            "for_output", "open_artefact", "register", "unregister"]

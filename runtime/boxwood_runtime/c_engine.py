@@ -1,0 +1,445 @@
+"""The fixed scoring code of the C target: the same text for every model, with ``PFX_`` standing
+for the model's C prefix and ``PFXU_`` for its upper-case form. :mod:`boxwood_runtime.csource`
+writes it under the model's tables; ``boxwood verify`` checks a file's copy against this text
+byte for byte, so the only part of a generated file that differs from model to model is the
+tables the verifier reads back.
+
+Why this code computes the source's bits (docs/c-target.md):
+
+* a numeric split compares ``v <= t``, then ``v > t``; a NaN fails both and takes the node's
+  missing direction, as the pure-Python scorer does;
+* float32 models round each input once, ``(double)(float)v``, after an explicit range test
+  (a C cast out of float's range is undefined; scikit-learn's float32 cast overflows to
+  infinity, so values at or beyond FLT_MAX + half an ulp become infinities here first);
+* raw scores start at the base value and add one leaf per tree, in tree order, in double:
+  no multiplication meets an addition anywhere in the raw path, so floating-point
+  contraction (FMA) has nothing to fuse, and reassociation needs -ffast-math, which the
+  file refuses (``__FAST_MATH__``); ``FLT_EVAL_METHOD`` must be 0 (no excess precision);
+* every loop is bounded by a table size or by the model's depth; no recursion, no malloc,
+  no stdio; only ``P_predict`` and ``P_label`` call libm (exp, pow).
+"""
+
+ENGINE = r"""
+/* ---- scoring code: the same for every model (boxwood verify checks it byte for byte) ---- */
+#if defined(__FAST_MATH__)
+#error "PFX_: built with -ffast-math (or -Ofast), which reorders additions and breaks NaN tests; the results would not be the source model's"
+#endif
+#if !defined(FLT_EVAL_METHOD) || FLT_EVAL_METHOD != 0
+#error "PFX_: this target evaluates doubles with excess precision (FLT_EVAL_METHOD != 0); use SSE2 or another IEEE double unit"
+#endif
+
+#ifndef PFXU_UNSEEN_AS_MISSING
+#define PFXU_UNSEEN_AS_MISSING 0 /* 1: an unseen category value is routed as missing, as scikit-learn does */
+#endif
+#define PFXU_NAN (NAN)
+#define PFXU_INF (INFINITY)
+#define PFXU_F32_LIMIT 0x1.ffffffp+127 /* FLT_MAX + half an ulp: here and beyond, float rounds to infinity */
+
+/* Turn the record into the values the trees compare; 0 or an error code. */
+static int PFX_prepare(const double *x, double *v)
+{
+    int j;
+    for (j = 0; j < PFXU_N_TREE_FEATURES; ++j) {
+        double xv;
+#if PFXU_HAS_STEPS
+        int s;
+        xv = x[PFX_source_field[j]];
+        for (s = PFX_step_start[j]; s < PFX_step_start[j + 1]; ++s) {
+            int known = xv == xv;
+            if (PFX_step_kind[s] == 0) { /* impute: a NaN becomes the fitted value */
+                if (!known) {
+                    xv = PFX_step_value[s];
+                }
+            } else { /* encode: a value becomes its position among the categories */
+                int c, first = PFX_step_cat_start[s], count = PFX_step_cat_start[s + 1] - first;
+                int found = -1;
+                if (!known && (PFX_step_flags[s] & 1)) {
+                    xv = PFX_step_missing[s];
+                    continue;
+                }
+                for (c = 0; known && c < count; ++c) {
+                    if (PFX_step_cat[first + c] == xv) {
+                        found = c;
+                        break;
+                    }
+                }
+                if (found >= 0) {
+                    xv = (double)found;
+                } else if (PFX_step_flags[s] & 2) {
+                    return PFXU_ERR_CATEGORY;
+                } else {
+                    xv = PFX_step_unknown[s];
+                }
+            }
+        }
+#else
+        xv = x[j];
+#endif
+        if (xv != xv) {
+#if PFXU_MISSING_REJECT
+            return PFXU_ERR_MISSING;
+#endif
+        }
+#if PFXU_HAS_CATEGORIES
+        else if (PFX_cat_start[j + 1] > PFX_cat_start[j]) {
+            int c, found = -1;
+            for (c = PFX_cat_start[j]; c < PFX_cat_start[j + 1]; ++c) {
+                if (PFX_cat_value[c] == xv) {
+                    found = c - PFX_cat_start[j];
+                    break;
+                }
+            }
+            if (found >= 0) {
+                xv = (double)found;
+            } else if (PFXU_UNSEEN_AS_MISSING || PFX_cat_unseen_missing[j]) {
+#if PFXU_MISSING_REJECT
+                return PFXU_ERR_MISSING;
+#else
+                xv = PFXU_NAN;
+#endif
+            } else {
+                return PFXU_ERR_CATEGORY;
+            }
+        }
+#endif
+#if !PFXU_ACCEPTS_INFINITY
+        else if (xv > DBL_MAX || xv < -DBL_MAX) {
+            return PFXU_ERR_INFINITE;
+        }
+#endif
+#if PFXU_COMPARE_FLOAT32
+        if (xv >= PFXU_F32_LIMIT || xv <= -PFXU_F32_LIMIT) {
+#if !PFXU_ACCEPTS_INFINITY
+            return PFXU_ERR_INFINITE;
+#else
+            xv = xv > 0.0 ? PFXU_INF : -PFXU_INF;
+#endif
+        } else if (xv == xv) {
+            xv = (double)(float)xv;
+        }
+#endif
+        v[j] = xv;
+    }
+    return PFXU_OK;
+}
+
+static int PFX_walk(const double *v, double *acc);
+
+/* Raw scores: base value plus one leaf per tree, in tree order, in double. */
+static int PFX_scores(const double *x, double *acc)
+{
+    double v[PFXU_N_TREE_FEATURES];
+    int rc = PFX_prepare(x, v);
+    return rc == PFXU_OK ? PFX_walk(v, acc) : rc;
+}
+
+/* The trees on prepared values (category codes, float-rounded where the model compares in float). */
+static int PFX_walk(const double *v, double *acc)
+{
+    int t, k;
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        acc[k] = PFXU_COMBINE_MEAN ? 0.0 : PFX_base[k];
+    }
+    for (t = 0; t < PFXU_N_TREES; ++t) {
+        long n = PFX_root[t];
+        int d;
+        for (d = 0; d < PFXU_MAX_DEPTH && PFX_feature[n] >= 0; ++d) {
+            double xv = v[PFX_feature[n]];
+#if PFXU_HAS_CATEGORIES
+            if (PFX_flags[n] & 2) {
+                if (xv != xv) {
+                    n = (PFX_flags[n] & 1) ? PFX_left[n] : PFX_right[n];
+                } else {
+                    long code = (long)xv, word = (long)PFX_value[n] + code / 32;
+                    n = ((PFX_catset[word] >> (code % 32)) & 1u) ? PFX_left[n] : PFX_right[n];
+                }
+                continue;
+            }
+#endif
+            if (xv <= PFX_value[n]) {
+                n = PFX_left[n];
+            } else if (xv > PFX_value[n]) {
+                n = PFX_right[n];
+            } else {
+                n = (PFX_flags[n] & 1) ? PFX_left[n] : PFX_right[n];
+            }
+        }
+        if (PFX_feature[n] >= 0) {
+            return PFXU_ERR_MODEL; /* deeper than the tables say: damaged tables */
+        }
+        acc[PFX_tree_output[t]] += PFX_value[n];
+    }
+#if PFXU_COMBINE_MEAN
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        acc[k] = PFX_trees_per_output[k] > 0 ? PFX_base[k] + acc[k] / (double)PFX_trees_per_output[k] : PFX_base[k];
+    }
+#endif
+    return PFXU_OK;
+}
+
+#if PFXU_TRANSFORM == 4 || PFXU_TRANSFORM == 5
+/* numpy's pairwise sum of a contiguous row (scikit-learn's softmax adds so), below 129 values. */
+static double PFX_block_sum(const double *e, int n)
+{
+    double r[8], total = 0.0;
+    int i, j;
+    if (n < 8) {
+        for (i = 0; i < n; ++i) {
+            total += e[i];
+        }
+        return total;
+    }
+    for (j = 0; j < 8; ++j) {
+        r[j] = e[j];
+    }
+    for (i = 8; i < n - n % 8; i += 8) {
+        for (j = 0; j < 8; ++j) {
+            r[j] += e[i + j];
+        }
+    }
+    total = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]));
+    for (; i < n; ++i) {
+        total += e[i];
+    }
+    return total;
+}
+
+/* The same sum for any length: halves (the first a multiple of 8) summed so and added,
+   with an explicit stack instead of recursion (depth below 40 for any int length). */
+static double PFX_pairwise_sum(const double *e, int n)
+{
+    int lo[40], len[40], half[40], stage[40], top = 0;
+    double left[40], ret = 0.0;
+    lo[0] = 0;
+    len[0] = n;
+    stage[0] = 0;
+    while (top >= 0) {
+        if (stage[top] == 0) {
+            if (len[top] <= 128) {
+                ret = PFX_block_sum(e + lo[top], len[top]);
+                --top;
+                continue;
+            }
+            half[top] = len[top] / 2 - (len[top] / 2) % 8;
+            stage[top] = 1;
+            lo[top + 1] = lo[top];
+            len[top + 1] = half[top];
+            stage[top + 1] = 0;
+            ++top;
+        } else if (stage[top] == 1) {
+            left[top] = ret;
+            stage[top] = 2;
+            lo[top + 1] = lo[top] + half[top];
+            len[top + 1] = len[top] - half[top];
+            stage[top + 1] = 0;
+            ++top;
+        } else {
+            ret = left[top] + ret;
+            --top;
+        }
+    }
+    return ret;
+}
+
+static void PFX_softmax(double *z, int n)
+{
+    double top = z[0], total = 0.0;
+    int k;
+    for (k = 1; k < n; ++k) {
+        if (z[k] > top) {
+            top = z[k];
+        }
+    }
+    for (k = 0; k < n; ++k) {
+        z[k] = exp(z[k] - top);
+    }
+    if (PFXU_SOFTMAX_PAIRWISE) {
+        total = PFX_pairwise_sum(z, n);
+    } else {
+        for (k = 0; k < n; ++k) {
+            total += z[k];
+        }
+    }
+    for (k = 0; k < n; ++k) {
+        z[k] = z[k] / total;
+    }
+}
+#endif
+
+#if PFXU_TRANSFORM == 5
+/* AdaBoost's decision values: divide by the total weight; two classes: -d0 + d1. */
+static void PFX_samme(double *acc)
+{
+    int k;
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        acc[k] = acc[k] / PFXU_WEIGHT_TOTAL;
+    }
+    if (PFXU_N_RAW == 2) {
+        acc[0] = -acc[0] + acc[1];
+    }
+}
+#endif
+
+/* The values a device reproduces bit for bit: raw scores (AdaBoost: its decision values). */
+static void PFX_exact(const double *acc, double *raw)
+{
+    double d[PFXU_N_RAW];
+    int k;
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        d[k] = acc[k];
+    }
+#if PFXU_TRANSFORM == 5
+    PFX_samme(d);
+#endif
+    for (k = 0; k < PFXU_N_OUTPUTS; ++k) {
+        raw[k] = d[k];
+    }
+}
+
+/* Predictions or class probabilities from raw scores. */
+static void PFX_transform(const double *acc, double *out)
+{
+    int k;
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        out[k] = acc[k];
+    }
+#if PFXU_TRANSFORM == 1
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        out[k] = exp(out[k]);
+    }
+#elif PFXU_TRANSFORM == 2
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        out[k] = 1.0 / (1.0 + exp(-out[k]));
+    }
+#elif PFXU_TRANSFORM == 3
+    for (k = 0; k < PFXU_N_RAW; ++k) {
+        out[k] = 1.0 / (1.0 + exp(-(2.0 * out[k])));
+    }
+#elif PFXU_TRANSFORM == 4
+    PFX_softmax(out, PFXU_N_RAW);
+#elif PFXU_TRANSFORM == 5
+    PFX_samme(out);
+    if (PFXU_N_RAW == 2) {
+        out[1] = out[0] / 2.0;
+        out[0] = -out[0] / 2.0;
+    } else {
+        for (k = 0; k < PFXU_N_RAW; ++k) {
+            out[k] = out[k] / (double)(PFXU_N_RAW - 1);
+        }
+    }
+    PFX_softmax(out, PFXU_N_RAW);
+#elif PFXU_TRANSFORM == 6
+    out[0] = -pow(2.0, -(PFXU_DENOMINATOR != 0.0 ? out[0] / PFXU_DENOMINATOR : 1.0));
+#endif
+}
+
+#if PFXU_TASK != 0
+/* The predicted class's index (outlier detectors: 0 for -1, 1 for 1). */
+static int PFX_pick(const double *acc)
+{
+    int best = 0;
+#if PFXU_TASK == 2
+    double score[1];
+    PFX_transform(acc, score);
+    best = score[0] - PFXU_OFFSET >= 0.0;
+#elif PFXU_BINARY_RULE == 1
+    best = acc[0] > 0.0;
+#elif PFXU_BINARY_RULE == 2
+    best = acc[0] >= 0.0;
+#else
+    double d[PFXU_N_RAW];
+    int k;
+    PFX_exact(acc, d);
+    if (PFXU_TRANSFORM == 5 && PFXU_N_RAW == 2) {
+        return d[0] > 0.0;
+    }
+    for (k = 1; k < PFXU_N_RAW; ++k) {
+        if (d[k] > d[best]) {
+            best = k;
+        }
+    }
+#endif
+    return best;
+}
+#endif
+
+int PFX_raw(const double *x, double *raw)
+{
+    double acc[PFXU_N_RAW];
+    int rc = PFX_scores(x, acc);
+    if (rc == PFXU_OK) {
+        PFX_exact(acc, raw);
+    }
+    return rc;
+}
+
+int PFX_predict(const double *x, double *out)
+{
+    double acc[PFXU_N_RAW];
+    int rc = PFX_scores(x, acc);
+    if (rc == PFXU_OK) {
+        PFX_transform(acc, out);
+    }
+    return rc;
+}
+
+#if PFXU_TASK != 0
+int PFX_label(const double *x, int *label)
+{
+    double acc[PFXU_N_RAW];
+    int rc = PFX_scores(x, acc);
+    if (rc == PFXU_OK) {
+        *label = PFX_pick(acc);
+    }
+    return rc;
+}
+#endif
+
+size_t PFX_score_many(size_t n, const double *x, double *raw, double *out, int *label, int *status)
+{
+    double acc[PFXU_N_RAW], exact[PFXU_N_RAW];
+    size_t i, failed = 0;
+    int k;
+    for (i = 0; i < n; ++i) {
+        int rc = PFX_scores(x + i * PFXU_N_FEATURES, acc);
+        if (rc != PFXU_OK) {
+            ++failed;
+        } else {
+            PFX_exact(acc, exact);
+        }
+        for (k = 0; raw && k < PFXU_N_OUTPUTS; ++k) {
+            raw[i * PFXU_N_OUTPUTS + k] = rc == PFXU_OK ? exact[k] : PFXU_NAN;
+        }
+        if (out && rc == PFXU_OK) {
+            PFX_transform(acc, out + i * PFXU_N_PREDICTIONS);
+        }
+        for (k = 0; out && rc != PFXU_OK && k < PFXU_N_PREDICTIONS; ++k) {
+            out[i * PFXU_N_PREDICTIONS + k] = PFXU_NAN;
+        }
+        if (label) {
+#if PFXU_TASK != 0
+            label[i] = rc == PFXU_OK ? PFX_pick(acc) : -1;
+#else
+            label[i] = -1;
+#endif
+        }
+        if (status) {
+            status[i] = rc;
+        }
+    }
+    return failed;
+}
+
+/* The raw sums for n rows of prepared values (PFXU_N_TREE_FEATURES each): the native batch
+   engine's entry point (boxwood_runtime.native). Returns how many rows met damaged tables. */
+size_t PFX_walk_many(size_t n, const double *v, double *sums)
+{
+    size_t i, failed = 0;
+    for (i = 0; i < n; ++i) {
+        if (PFX_walk(v + i * PFXU_N_TREE_FEATURES, sums + i * PFXU_N_RAW) != PFXU_OK) {
+            ++failed;
+        }
+    }
+    return failed;
+}
+"""
