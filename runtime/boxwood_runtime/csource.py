@@ -8,7 +8,7 @@ The model has already been validated by :func:`boxwood_runtime.scorer.load`; thi
 only lays its arrays out as C tables under the fixed scoring code in
 :mod:`boxwood_runtime.c_engine`. Only integers, hexadecimal float literals and escaped string
 literals reach the C text; names and labels from the file go into string literals and into
-one JSON comment with every ``/`` and ``?`` escaped, so no name can end a comment or form a
+one JSON comment with every ``/`` and ``?`` written as ``\\u`` escapes, so no name can open or end a comment or form a
 trigraph.
 
 Inputs: ``x[j]`` is input ``j`` in the order of ``PREFIX_input_names`` (the features, or a
@@ -180,7 +180,7 @@ def _meta(model, plan):
             "provenance": doc.get("provenance", {}), "self_check": doc.get("self_check"),
             "source_digest": doc.get("boxwood_digest")}
     text = json.dumps(meta, ensure_ascii=True, sort_keys=True, allow_nan=False, separators=(",", ":"))
-    return text.replace("/", "\\/").replace("?", "\\u003f")
+    return text.replace("/", "\\u002f").replace("?", "\\u003f")
 
 
 def generate(model, prefix="model"):

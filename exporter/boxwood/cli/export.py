@@ -32,9 +32,10 @@ def add(commands):
                    help="joblib or pickle file of a fitted estimator (trusted files only: "
                         "loading it runs code), or an ONNX tree-ensemble file (.onnx: read as data, "
                         "never executed)")
-    p.add_argument("-o", "--output", required=True, metavar="OUT.json|OUT.onnx",
+    p.add_argument("-o", "--output", required=True, metavar="OUT.json|OUT.onnx|OUT.c",
                    help="artefact file to write: .json (boxwood JSON artefact, what 'boxwood score' and a "
-                        "bundle take) or .onnx")
+                        "bundle take), .onnx, or .c (C99 source; OUT.h is written beside it, "
+                        "docs/c-target.md)")
     p.add_argument("--reference-rows", type=positive_int, default=6, metavar="N",
                    help="number of self-check rows scored by the source model and stored in the "
                         "artefact (default: %(default)s; one all-missing row is added when the "
@@ -49,6 +50,10 @@ def add(commands):
                    help="ONNX only: write the float32 graph for older runtimes (ai.onnx.ml opset 3 "
                         "TreeEnsembleRegressor, float32 input): decisions unchanged, raw scores within "
                         "a stated bound instead of bit-identical")
+    p.add_argument("--c-prefix", metavar="NAME",
+                   help="C only: the identifier prefix of the generated functions and macros "
+                        "(default: the output's file stem made an identifier: pump-2.c gives pump_2_raw, "
+                        "PUMP_2_N_FEATURES)")
     p.set_defaults(func=run)
 
 
@@ -61,6 +66,10 @@ def _options(args, fmt):
         given["legacy"] = True
     if given and not set(given) <= set(fmt.write_options):
         raise UsageError("--input-type and --legacy-float32 apply to ONNX output only")
+    if args.c_prefix is not None:
+        if "c_prefix" not in fmt.write_options:
+            raise UsageError("--c-prefix applies to C output (.c) only")
+        given["c_prefix"] = args.c_prefix
     if args.legacy_float32 and args.input_type == "float64":
         raise UsageError("--legacy-float32 graphs take float32 input; drop --input-type float64")
     return given
@@ -89,6 +98,8 @@ def run(args):
     print("exported %s to %s" % (result.source, result.path))
     out = info.get("outputs") or {}
     rows = [("format", "%s, version %s" % (info.get("format"), info.get("format_version")))]
+    if fmt.name == "c":
+        rows[0] = ("files", "%s and %s (C99)" % (result.path, str(result.path)[:-2] + ".h"))
     if fmt.name == "onnx":
         rows[0] = ("graph", "ai.onnx.ml opset %s, %s input" % ((3, "float32") if args.legacy_float32 else
                                                                (5, args.input_type or "float64")))
@@ -113,6 +124,19 @@ def run(args):
         print("  %-11s %s" % ("input", "NOT raw records: the graph holds the tree part only; its input is the "
                               "preprocessed feature vector (after imputation/encoding); metadata "
                               "boxwood.preprocessing lists each feature's field and steps (docs/onnx.md)"))
+    if fmt.name == "c":
+        print("  %-11s %s" % ("use", "#include the .h; %s_raw(x, raw) / %s_predict(x, out) return 0 or an error "
+                              "code (docs/c-target.md); 'boxwood verify MODEL %s' proves it"
+                              % (_prefix(result.path, args.c_prefix), _prefix(result.path, args.c_prefix),
+                                 result.path)))
     if not result.ok:
         raise CheckFailed("%s: the written file does not reproduce the model: %s" % (result.path, result.check[1]))
     return 0
+
+
+def _prefix(path, given):
+    from pathlib import Path
+
+    from boxwood_runtime.csource import prefix_from
+
+    return prefix_from(Path(path).stem, given)
