@@ -134,40 +134,69 @@ static int PFX_scores(const double *x, double *acc)
 }
 
 /* The trees on prepared values (category codes, float-rounded where the model compares in float). */
+/* One step down from split node n for the value xv: left when xv <= t, right when xv > t; a
+   NaN fails both comparisons and takes the node's missing direction; a categorical split goes
+   left when the category code's bit is set. The child is picked with a mask, not a jump: a
+   comparison the processor cannot predict costs no pipeline flush. nan_possible = 0 promises
+   that xv is not NaN (then xv > t alone decides). */
+static long PFX_next(long n, double xv, int nan_possible)
+{
+    long l = PFX_left[n], go_right;
+#if PFXU_HAS_CATEGORIES
+    if (PFX_flags[n] & 2) {
+        if (xv != xv) {
+            go_right = !(PFX_flags[n] & 1);
+        } else {
+            long code = (long)xv, word = (long)PFX_value[n] + code / 32;
+            go_right = !((PFX_catset[word] >> (code % 32)) & 1u);
+        }
+        return l ^ ((l ^ (long)PFX_right[n]) & -go_right);
+    }
+#endif
+    go_right = xv > PFX_value[n];
+    if (nan_possible) {
+        int le = xv <= PFX_value[n];
+        go_right = !(le | (!le & !go_right & (PFX_flags[n] & 1)));
+    }
+    return l ^ ((l ^ (long)PFX_right[n]) & -go_right);
+}
+
+/* The raw sums of one record's prepared values. Trees go in groups of PFXU_GROUP, stepped
+   down together one level at a time so that their walks overlap in the processor; the
+   leaves are then added one by one in tree order, so the sums are those of a tree-by-tree
+   walk bit for bit. Every loop is bounded by the tables' sizes and the model's depth. */
+#define PFXU_GROUP 8
 static int PFX_walk(const double *v, double *acc)
 {
-    int t, k;
+    long node[PFXU_GROUP];
+    int t0, g, k, d;
     for (k = 0; k < PFXU_N_RAW; ++k) {
         acc[k] = PFXU_COMBINE_MEAN ? 0.0 : PFX_base[k];
     }
-    for (t = 0; t < PFXU_N_TREES; ++t) {
-        long n = PFX_root[t];
-        int d;
-        for (d = 0; d < PFXU_MAX_DEPTH && PFX_feature[n] >= 0; ++d) {
-            double xv = v[PFX_feature[n]];
-#if PFXU_HAS_CATEGORIES
-            if (PFX_flags[n] & 2) {
-                if (xv != xv) {
-                    n = (PFX_flags[n] & 1) ? PFX_left[n] : PFX_right[n];
-                } else {
-                    long code = (long)xv, word = (long)PFX_value[n] + code / 32;
-                    n = ((PFX_catset[word] >> (code % 32)) & 1u) ? PFX_left[n] : PFX_right[n];
+    for (t0 = 0; t0 < PFXU_N_TREES; t0 += PFXU_GROUP) {
+        int count = PFXU_N_TREES - t0 < PFXU_GROUP ? PFXU_N_TREES - t0 : PFXU_GROUP;
+        for (g = 0; g < count; ++g) {
+            node[g] = PFX_root[t0 + g];
+        }
+        for (d = 0; d < PFXU_MAX_DEPTH; ++d) {
+            int moved = 0;
+            for (g = 0; g < count; ++g) {
+                int f = PFX_feature[node[g]];
+                if (f >= 0) {
+                    node[g] = PFX_next(node[g], v[f], 1);
+                    moved = 1;
                 }
-                continue;
             }
-#endif
-            if (xv <= PFX_value[n]) {
-                n = PFX_left[n];
-            } else if (xv > PFX_value[n]) {
-                n = PFX_right[n];
-            } else {
-                n = (PFX_flags[n] & 1) ? PFX_left[n] : PFX_right[n];
+            if (!moved) {
+                break;
             }
         }
-        if (PFX_feature[n] >= 0) {
-            return PFXU_ERR_MODEL; /* deeper than the tables say: damaged tables */
+        for (g = 0; g < count; ++g) {
+            if (PFX_feature[node[g]] >= 0) {
+                return PFXU_ERR_MODEL; /* deeper than the tables say: damaged tables */
+            }
+            acc[PFX_tree_output[t0 + g]] += PFX_value[node[g]];
         }
-        acc[PFX_tree_output[t]] += PFX_value[n];
     }
 #if PFXU_COMBINE_MEAN
     for (k = 0; k < PFXU_N_RAW; ++k) {
@@ -431,14 +460,62 @@ size_t PFX_score_many(size_t n, const double *x, double *raw, double *out, int *
 }
 
 /* The raw sums for n rows of prepared values (PFXU_N_TREE_FEATURES each): the native batch
-   engine's entry point (boxwood_runtime.native). Returns how many rows met damaged tables. */
+   engine's entry point (boxwood_runtime.native). Returns 0, or nonzero when a walk met damaged
+   tables. Rows go in blocks of PFXU_BLOCK, and each tree steps the whole block down one level
+   at a time (the walks of different rows overlap in the processor); each row still adds its
+   leaves in tree order, so the sums are PFX_walk's bit for bit. */
+#define PFXU_BLOCK 64
 size_t PFX_walk_many(size_t n, const double *v, double *sums)
 {
-    size_t i, failed = 0;
-    for (i = 0; i < n; ++i) {
-        if (PFX_walk(v + i * PFXU_N_TREE_FEATURES, sums + i * PFXU_N_RAW) != PFXU_OK) {
-            ++failed;
+    long node[PFXU_BLOCK];
+    size_t start, failed = 0;
+    for (start = 0; start < n; start += PFXU_BLOCK) {
+        const double *vb = v + start * PFXU_N_TREE_FEATURES;
+        double *sb = sums + start * PFXU_N_RAW;
+        int r, m = n - start < PFXU_BLOCK ? (int)(n - start) : PFXU_BLOCK;
+        int t, k, d, has_nan = 0;
+        for (r = 0; r < m * PFXU_N_TREE_FEATURES; ++r) {
+            has_nan |= vb[r] != vb[r];
         }
+        for (r = 0; r < m; ++r) {
+            for (k = 0; k < PFXU_N_RAW; ++k) {
+                sb[r * PFXU_N_RAW + k] = PFXU_COMBINE_MEAN ? 0.0 : PFX_base[k];
+            }
+        }
+        for (t = 0; t < PFXU_N_TREES; ++t) {
+            for (r = 0; r < m; ++r) {
+                node[r] = PFX_root[t];
+            }
+            for (d = 0; d < PFXU_MAX_DEPTH; ++d) {
+                int moved = 0;
+                for (r = 0; r < m; ++r) {
+                    int f = PFX_feature[node[r]];
+                    if (f >= 0) {
+                        double xv = vb[r * PFXU_N_TREE_FEATURES + f];
+                        node[r] = has_nan ? PFX_next(node[r], xv, 1) : PFX_next(node[r], xv, 0);
+                        moved = 1;
+                    }
+                }
+                if (!moved) {
+                    break;
+                }
+            }
+            for (r = 0; r < m; ++r) {
+                if (PFX_feature[node[r]] >= 0) {
+                    ++failed; /* deeper than the tables say: damaged tables (the caller raises) */
+                    continue;
+                }
+                sb[r * PFXU_N_RAW + PFX_tree_output[t]] += PFX_value[node[r]];
+            }
+        }
+#if PFXU_COMBINE_MEAN
+        for (r = 0; r < m; ++r) {
+            for (k = 0; k < PFXU_N_RAW; ++k) {
+                double *a = sb + r * PFXU_N_RAW + k;
+                *a = PFX_trees_per_output[k] > 0 ? PFX_base[k] + *a / (double)PFX_trees_per_output[k] : PFX_base[k];
+            }
+        }
+#endif
     }
     return failed;
 }

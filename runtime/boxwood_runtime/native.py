@@ -158,13 +158,14 @@ class NativeScorer:
     def _call(self, fn, x, out, row):
         if len(x) != self._n:
             raise RecordError(row, None, "has %d values, the model takes %d" % (len(x), self._n))
-        buf = self._x
-        for j, v in enumerate(x):
-            buf[j] = v
-        rc = fn(buf, out)
+        try:
+            self._x[:] = x
+        except TypeError:
+            raise RecordError(row, None, "the C target takes numbers only (NaN for missing)")
+        rc = fn(self._x, out)
         if rc:
             raise RecordError(row, None, _ERRORS.get(rc, "error code %d" % rc))
-        return list(out)
+        return out[:]
 
     def raw(self, x, row=None):
         """The values :func:`PREFIX_raw` writes (the model's exact values) for one record."""
