@@ -30,9 +30,9 @@ from boxwood.formats.c import board
 MODEL_H = """\
 #ifndef TOY_H
 #define TOY_H
-#define toy_N_FEATURES 2
-#define toy_N_OUTPUTS 1
-#define toy_N_PREDICTIONS 2
+#define TOY_N_FEATURES 2
+#define TOY_N_OUTPUTS 1
+#define TOY_N_PREDICTIONS 2
 int toy_raw(const double *x, double *raw);
 int toy_predict(const double *x, double *out);
 #endif
@@ -62,7 +62,7 @@ int toy_raw(const double *x, double *raw)
 
 int toy_predict(const double *x, double *out)
 {
-    double raw[toy_N_OUTPUTS];
+    double raw[TOY_N_OUTPUTS];
     int rc = toy_raw(x, raw);
     if (rc != 0) return rc;
     out[1] = 1.0 / (1.0 + exp(-raw[0]));
@@ -211,6 +211,15 @@ def test_broken_c_raises_board_error_with_the_compiler_message(tools, model_dir,
 def test_header_disagreeing_with_the_vectors_fails_to_build(tools, model_dir, tmp_path):
     with pytest.raises(board.BoardError, match="boxwood_check_n_outputs"):
         board.run_selftest(tmp_path, "toy", [model_dir / "toy.c"], ROWS, 2, 2)
+
+
+def test_sizes_spelt_with_the_prefix_as_given(tools, tmp_path):
+    """The header may spell its sizes toy_N_... instead of TOY_N_..."""
+    (tmp_path / "toy.h").write_text(MODEL_H.replace("TOY_N_", "toy_N_"))
+    (tmp_path / "toy.c").write_text(MODEL_C.replace("TOY_N_", "toy_N_"))
+    assert_matches_python(board.run_selftest(tmp_path / "w", "toy", [tmp_path / "toy.c"], ROWS, 1, 2).results)
+    with pytest.raises(board.BoardError, match="boxwood_check_n_features"):
+        board.run_selftest(tmp_path / "w", "toy", [tmp_path / "toy.c"], [[1.0, 2.0, 3.0]], 1, 2)
 
 
 def test_zero_rows_build_and_print_done(tools, model_dir, tmp_path):

@@ -377,7 +377,8 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
     digits) and finally ``done <n>``. ``code`` is P_raw's code, or P_predict's when P_raw
     returned 0. Both buffers are zeroed before each call. The program is plain C99 (stdio,
     no board code), so it runs natively too. Compile-time checks make it fail to build when
-    P.h's P_N_FEATURES, P_N_OUTPUTS or P_N_PREDICTIONS disagree with what is given here."""
+    P.h's sizes disagree with what is given here: P_N_FEATURES, P_N_OUTPUTS and
+    P_N_PREDICTIONS, with P upper-cased (as the generator writes them) or as given."""
     _check_prefix(prefix)
     rows = [list(r) for r in rows]
     if n_outputs < 1 or n_predictions < 1:
@@ -397,14 +398,27 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
         "#include <string.h>",
         '#include "%s.h"' % P,
         "",
-        "/* Fails to compile (negative array size) when %s.h disagrees with the test vectors. */" % P,
-        "typedef char boxwood_check_n_outputs[(%s_N_OUTPUTS == %d) ? 1 : -1];" % (P, n_outputs),
-        "typedef char boxwood_check_n_predictions[(%s_N_PREDICTIONS == %d) ? 1 : -1];" % (P, n_predictions),
+        "#define BOXWOOD_N_OUTPUTS %d" % n_outputs,
+        "#define BOXWOOD_N_PREDICTIONS %d" % n_predictions,
+        "#define BOXWOOD_N_FEATURES %d" % (n_features or 1),
+        "",
+        "/* Fails to compile (negative array size) when %s.h disagrees with the test vectors." % P,
+        "   The sizes may be spelt with the prefix upper-cased or as given. */",
     ]
+    checks = [("OUTPUTS", n_outputs), ("PREDICTIONS", n_predictions)]
     if n_features is not None:
-        lines.append("typedef char boxwood_check_n_features[(%s_N_FEATURES == %d) ? 1 : -1];" % (P, n_features))
+        checks.append(("FEATURES", n_features))
+    for what, n in checks:
+        up, asis = "%s_N_%s" % (P.upper(), what), "%s_N_%s" % (P, what)
+        lines += ["#if defined(%s)" % up,
+                  "typedef char boxwood_check_n_%s[(%s == %d) ? 1 : -1];" % (what.lower(), up, n),
+                  "#elif defined(%s)" % asis,
+                  "typedef char boxwood_check_n_%s[(%s == %d) ? 1 : -1];" % (what.lower(), asis, n),
+                  "#else",
+                  '#error "%s.h defines neither %s nor %s"' % (P, up, asis),
+                  "#endif"]
     lines += ["", "static const unsigned long n_rows = %d;" % len(rows), "",
-              "static const double rows[%d][%s_N_FEATURES] = {" % (max(len(rows), 1), P)]
+              "static const double rows[%d][BOXWOOD_N_FEATURES] = {" % max(len(rows), 1)]
     for r in rows:
         lines.append("    {" + ", ".join(c_double(v) for v in r) + "},")
     if not rows:
@@ -426,16 +440,16 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
         "{",
         "    unsigned long i;",
         "    for (i = 0; i < n_rows; i++) {",
-        "        double raw[%s_N_OUTPUTS], out[%s_N_PREDICTIONS];" % (P, P),
+        "        double raw[BOXWOOD_N_OUTPUTS], out[BOXWOOD_N_PREDICTIONS];",
         "        int rc, prc;",
         "        memset(raw, 0, sizeof raw);",
         "        memset(out, 0, sizeof out);",
         "        rc = %s_raw(rows[i], raw);" % P,
         "        prc = %s_predict(rows[i], out);" % P,
         '        printf("row %lu rc %d raw", i, rc != 0 ? rc : prc);',
-        "        print_bits(raw, %s_N_OUTPUTS);" % P,
+        "        print_bits(raw, BOXWOOD_N_OUTPUTS);",
         '        printf(" out");',
-        "        print_bits(out, %s_N_PREDICTIONS);" % P,
+        "        print_bits(out, BOXWOOD_N_PREDICTIONS);",
         '        printf("\\n");',
         "    }",
         '    printf("done %lu\\n", i);',
