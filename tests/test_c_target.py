@@ -15,7 +15,6 @@ Outside references:
 from __future__ import annotations
 
 import ctypes
-import math
 import re
 import subprocess
 

@@ -62,38 +62,11 @@ class CEvaluator(Evaluator):
             raise FormatError("%s does not compile: %s" % (c_path, exc))
         self._lib = native.load_library(path, prefix)
         self._many = getattr(self._lib, prefix + "_score_many")
-        e = ensemble
-        self.n_inputs = len(e.fields) if e.fields is not None else len(e.features)
-        self.n_exact = 1 if e.post_transform == "samme" and e.n_outputs == 2 else e.n_outputs
-        self._codes = [None] * self.n_inputs
-        if e.fields is None:
-            for j, f in enumerate(e.features):
-                if f.is_categorical and any(isinstance(c, str) for c in f.categories):
-                    self._codes[j] = {c: float(i) for i, c in enumerate(f.categories)}
-        self._names = list(e.fields) if e.fields is not None else [f.name for f in e.features]
-
-    def matrix(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
-        """Rows in the hub's form as the C function's x: None as NaN, a text category as its
-        position (an unseen one as -1, no category's value)."""
-        X = np.empty((len(rows), self.n_inputs), dtype=np.float64)
-        for i, row in enumerate(rows):
-            if len(row) != self.n_inputs:
-                raise ValueError("row %d has %d values, the C code takes %d" % (i, len(row), self.n_inputs))
-            for j, v in enumerate(row):
-                codes = self._codes[j]
-                if v is None:
-                    X[i, j] = np.nan
-                elif codes is not None:
-                    X[i, j] = codes.get(v, -1.0) if isinstance(v, str) else -1.0
-                elif isinstance(v, bool) or not isinstance(v, (int, float)):
-                    raise ValueError("row %d, field %r: %r is not a number (the C target takes numbers only)"
-                                     % (i, self._names[j], v))
-                else:
-                    X[i, j] = float(v)
-        return X
+        self.inputs = CInputs(ensemble)
+        self.n_exact = 1 if ensemble.post_transform == "samme" and ensemble.n_outputs == 2 else ensemble.n_outputs
 
     def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
-        X = self.matrix(rows)
+        X = self.inputs.matrix(rows)
         n = len(rows)
         raw = np.empty((n, self.n_exact))
         out = np.empty((n, self.ensemble.n_outputs))
@@ -111,3 +84,39 @@ class CEvaluator(Evaluator):
         if self.ensemble.task != "regression":
             labels = [self.ensemble.classes[j] for j in label.tolist()]
         return Outputs(raw, out, labels)
+
+
+class CInputs:
+    """Rows in the hub's form (features in order, or a pipeline's raw fields; None for missing)
+    as the C functions' x: NaN for missing, a text category as its position in the feature's
+    categories (an unseen one as -1, which is no category's value)."""
+
+    def __init__(self, ensemble: Ensemble):
+        e = ensemble
+        self.n_inputs = len(e.fields) if e.fields is not None else len(e.features)
+        self._codes: List[Any] = [None] * self.n_inputs
+        if e.fields is None:
+            for j, f in enumerate(e.features):
+                if f.is_categorical and any(isinstance(c, str) for c in f.categories):
+                    self._codes[j] = {c: float(i) for i, c in enumerate(f.categories)}
+        self._names = list(e.fields) if e.fields is not None else [f.name for f in e.features]
+
+    def matrix(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
+        """The rows as a float64 array (n, inputs); ValueError naming the row and field of a
+        value the C target cannot take."""
+        X = np.empty((len(rows), self.n_inputs), dtype=np.float64)
+        for i, row in enumerate(rows):
+            if len(row) != self.n_inputs:
+                raise ValueError("row %d has %d values, the C code takes %d" % (i, len(row), self.n_inputs))
+            for j, v in enumerate(row):
+                codes = self._codes[j]
+                if v is None:
+                    X[i, j] = np.nan
+                elif codes is not None:
+                    X[i, j] = codes.get(v, -1.0) if isinstance(v, str) else -1.0
+                elif isinstance(v, bool) or not isinstance(v, (int, float)):
+                    raise ValueError("row %d, field %r: %r is not a number (the C target takes numbers only)"
+                                     % (i, self._names[j], v))
+                else:
+                    X[i, j] = float(v)
+        return X
