@@ -395,3 +395,19 @@ def test_pairwise_sum_is_numpys_row_sum(tmp_path):
         e = np.exp(rng.normal(size=n) * 30)
         got = lib.t_sum(e.ctypes.data_as(ctypes.POINTER(ctypes.c_double)), n)
         assert got == float(np.sum(e)), n
+
+
+def test_without_a_compiler_export_says_so_and_verify_exits_2(tmp_path, monkeypatch, capsys):
+    import joblib
+
+    from boxwood.cli import main
+
+    case = zoo.fitted("gbr_squared_error")
+    joblib.dump(case.model, tmp_path / "m.joblib")
+    monkeypatch.setenv("CC", str(tmp_path / "no-such-cc"))
+    assert main(["export", str(tmp_path / "m.joblib"), "-o", str(tmp_path / "m.c")]) == 0
+    assert "not compiled here (no C compiler found)" in capsys.readouterr().out
+    assert main(["verify", str(tmp_path / "m.joblib"), str(tmp_path / "m.c")]) == 2
+    assert "needs a C compiler" in capsys.readouterr().err
+    monkeypatch.delenv("CC")
+    assert main(["verify", str(tmp_path / "m.joblib"), str(tmp_path / "m.c")]) == 0
