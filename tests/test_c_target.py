@@ -255,19 +255,31 @@ def test_changed_scoring_code_is_refused(tmp_path):
     case, ensemble, _ = zoo.exported("gbr_squared_error")
     path = tmp_path / "m.c"
     c_writer.write(ensemble, path)
-    path.write_text(path.read_text().replace("if (xv <= m_value[n]) {", "if (xv < m_value[n]) {"))
-    with pytest.raises(formats.FormatError, match="scoring code differs from boxwood's at line"):
+    text = path.read_text()
+    assert "go_right = xv > m_value[n];" in text
+    path.write_text(text.replace("go_right = xv > m_value[n];", "go_right = xv >= m_value[n];"))
+    with pytest.raises(formats.DamagedArtefact, match="scoring code differs from boxwood's at line"):
+        c_reader.read_c(path)
+    # a damaged boxwood file is a failed check (exit 1), as for a JSON artefact
+    import joblib
+    from boxwood.cli import main
+
+    joblib.dump(case.model, tmp_path / "m.joblib")
+    assert main(["verify", str(tmp_path / "m.joblib"), str(path)]) == 1
+    # a file from a boxwood with other scoring code is named as such
+    path.write_text(text.replace('"engine":"sha256:', '"engine":"sha256:0'))
+    with pytest.raises(formats.FormatError, match="another version of boxwood's scoring code.*export it again"):
         c_reader.read_c(path)
     for bad in ("#define exp(v) 0.0\n", "#include <stdio.h>\n"):
         c_writer.write(ensemble, path)
         text = path.read_text()
         path.write_text(text.replace("#include <float.h>\n", bad + "#include <float.h>\n"))
-        with pytest.raises(formats.FormatError, match="only the header"):
+        with pytest.raises(formats.DamagedArtefact, match="only the header"):
             c_reader.read_c(path)
     c_writer.write(ensemble, path)
     header = path.with_suffix(".h")
     header.write_text(header.read_text().replace("#include <stddef.h>", "#include <stddef.h>\n#define exp(v) 0.0"))
-    with pytest.raises(formats.FormatError, match="differs from the header boxwood writes"):
+    with pytest.raises(formats.DamagedArtefact, match="differs from the header boxwood writes"):
         CEvaluator(path, c_reader.read_c(path))
 
 

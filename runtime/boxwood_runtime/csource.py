@@ -20,6 +20,7 @@ the field and the step.
 
 Standard library only (Python 3.8+), like the rest of the device side.
 """
+import hashlib
 import json
 import math
 import re
@@ -49,6 +50,11 @@ CAUTION = (
     "CAUTION: the outputs are advisory. Where they drive equipment that can hurt someone, the safety\n"
     "functions need their own engineering under the applicable standards and local codes; this code is\n"
     "not a safety function.")
+
+
+def engine_id():
+    """A short SHA-256 of the fixed scoring code: a file names the code it was written with."""
+    return "sha256:" + hashlib.sha256(ENGINE.encode("utf-8")).hexdigest()[:16]
 
 
 class CTargetError(ValueError):
@@ -178,7 +184,7 @@ def _meta(model, plan):
             "fields": list(model.input_names) if model.preprocesses else None,
             "classes": model.classes, "output_names": list(model.output_names),
             "provenance": doc.get("provenance", {}), "self_check": doc.get("self_check"),
-            "source_digest": doc.get("boxwood_digest")}
+            "source_digest": doc.get("boxwood_digest"), "engine": engine_id()}
     text = json.dumps(meta, ensure_ascii=True, sort_keys=True, allow_nan=False, separators=(",", ":"))
     return text.replace("/", "\\u002f").replace("?", "\\u003f")
 

@@ -7,9 +7,9 @@ Everything outside this package reaches a format through the registry
 CLI. Adding a target is one package here plus one line below (DEVELOPERS.md, "How to add
 a target").
 """
-from .registry import (FORMATS, Artefact, Format, FormatError, MissingDependency, by_name, for_file, for_output,
-                       open_artefact, register, unregister)
+from .registry import (FORMATS, Artefact, DamagedArtefact, Format, FormatError, MissingDependency, by_name,
+                       for_file, for_output, open_artefact, register, unregister)
 from . import c, json, onnx  # noqa: E402,F401  (each registers itself)
 
-__all__ = ["FORMATS", "Artefact", "Format", "FormatError", "MissingDependency", "by_name", "for_file",
+__all__ = ["FORMATS", "Artefact", "DamagedArtefact", "Format", "FormatError", "MissingDependency", "by_name", "for_file",
            "for_output", "open_artefact", "register", "unregister"]

@@ -28,6 +28,11 @@ class FormatError(ValueError):
     """A file is not a readable artefact of the format it claims or seems to be, or no format fits."""
 
 
+class DamagedArtefact(FormatError):
+    """A file that carries a boxwood format's own marker but fails that format's integrity
+    checks (changed code or tables): a failed check, exit 1, not bad input."""
+
+
 class MissingDependency(FormatError):
     """An optional package that this format needs is not installed (the message says how to get it)."""
 

@@ -12,7 +12,7 @@ import numpy as np
 from boxwood_runtime import ArtefactError
 
 from ..contract import Outputs
-from ..formats import Artefact, open_artefact
+from ..formats import Artefact, DamagedArtefact, open_artefact
 from ..formats.registry import file_kind
 from ..ir import Ensemble
 from ..sources import load_model_file, read_model
@@ -168,7 +168,8 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
             # A damaged boxwood artefact (it carries a digest, but the digest, structure or
             # version fails: ArtefactError) is a failed check, exit 1, as everywhere else; a
             # missing file or a file of another kind is bad input, exit 2 (README, "Exit codes").
-            damaged = isinstance(exc, ArtefactError) and file_kind(p) == "json-artefact"
+            damaged = ((isinstance(exc, ArtefactError) and file_kind(p) == "json-artefact")
+                       or isinstance(exc, DamagedArtefact))
             unopened.append(ArtefactReport(str(p), "not opened", None, None, [
                 Check("open", str(p), None, "fail", "cannot open the artefact: " + message, [message])], []))
             if not damaged:

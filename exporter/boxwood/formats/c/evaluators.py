@@ -11,7 +11,7 @@ from boxwood_runtime import native
 
 from ...contract import Evaluator, Outputs
 from ...ir import Ensemble
-from ..registry import FormatError, MissingDependency
+from ..registry import DamagedArtefact, FormatError, MissingDependency
 from .reader import check_head, expected_header, parse, read_text
 
 BASE_FLAGS = ("-std=c99", "-Wall", "-Wextra", "-pedantic", "-Werror")
@@ -30,7 +30,7 @@ def sources(c_path: Path, ensemble: Ensemble) -> Tuple[str, str, str, str]:
         raise FormatError("%s includes %s, which is not beside it" % (c_path, header_name))
     h_text = read_text(h_path)
     if h_text != expected_header(text, ensemble):
-        raise FormatError("%s differs from the header boxwood writes for %s; boxwood compiles only the "
+        raise DamagedArtefact("%s differs from the header boxwood writes for %s; boxwood compiles only the "
                           "header it wrote" % (h_path, Path(c_path).name))
     return text, h_text, header_name, parse(text)[0]
 

@@ -16,10 +16,10 @@ from pathlib import Path
 from typing import Any, Dict, List, Optional, Tuple, Union
 
 from boxwood_runtime.c_engine import ENGINE
-from boxwood_runtime.csource import BINARY_RULE_CODES, MARKER, TASK_CODES, TRANSFORM_CODES
+from boxwood_runtime.csource import BINARY_RULE_CODES, MARKER, TASK_CODES, TRANSFORM_CODES, engine_id
 
 from ...ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
-from ..registry import FormatError
+from ..registry import DamagedArtefact, FormatError
 
 TABLES_START = "/* ---- model tables: what boxwood verify reads back ---- */"
 ENGINE_START = "/* ---- scoring code: the same for every model (boxwood verify checks it byte for byte) ---- */"
@@ -106,11 +106,14 @@ def parse(text: str, where: str = "C file") -> Tuple[str, Dict[str, str], Dict[s
         raise FormatError("%s: no base-value table" % where)
     prefix = m.group(1)
     engine = ENGINE.replace("PFXU_", prefix.upper() + "_").replace("PFX_", prefix + "_")
+    if meta.get("engine") != engine_id():
+        raise FormatError("%s was written with another version of boxwood's scoring code (%s; this boxwood's is "
+                          "%s): export it again with this boxwood to verify it" % (where, meta.get("engine"), engine_id()))
     if text[stop:] != engine:
         got, want = text[stop:].split("\n"), engine.split("\n")
         line = next((i for i, (a, b) in enumerate(zip(got, want)) if a != b), min(len(got), len(want)))
         first = text[:stop].count("\n") + line + 1
-        raise FormatError("%s: the scoring code differs from boxwood's at line %d (%r); boxwood verifies "
+        raise DamagedArtefact("%s: the scoring code differs from boxwood's at line %d (%r); boxwood verifies "
                           "only the code it wrote" % (where, first, got[line][:80] if line < len(got) else ""))
     defines: Dict[str, str] = {}
     tables: Dict[str, Tuple[str, list]] = {}
@@ -158,7 +161,7 @@ def parse(text: str, where: str = "C file") -> Tuple[str, Dict[str, str], Dict[s
             tables[name[len(prefix) + 1:]] = (ctype, parsed)
             i = j + 1
         else:
-            raise FormatError("%s: unexpected text in the tables section: %r" % (at, line[:80]))
+            raise DamagedArtefact("%s: unexpected text in the tables section: %r" % (at, line[:80]))
     return prefix, defines, tables, meta
 
 
@@ -406,11 +409,11 @@ def check_head(text: str, where: str = "C file") -> str:
     end = next((i for i, line in enumerate(lines) if line == " */"), None)
     if end is None or not lines[0].startswith("/* ") or any(
             not line.startswith(" *") or "*/" in line for line in lines[1:end]) or "*/" in lines[0]:
-        raise FormatError("%s: the comment at the top is not the one boxwood writes" % where)
+        raise DamagedArtefact("%s: the comment at the top is not the one boxwood writes" % where)
     rest = lines[end + 1:]
     m = re.match(r'^#include "([A-Za-z0-9_.+-]+\.h)"$', rest[0]) if rest else None
     if not m or rest[1:] != _HEAD_INCLUDES:
-        raise FormatError("%s: only the header and <float.h>, <math.h>, <stdint.h> may be included above the "
+        raise DamagedArtefact("%s: only the header and <float.h>, <math.h>, <stdint.h> may be included above the "
                           "tables" % where)
     return m.group(1)
 
