@@ -48,7 +48,6 @@ import json
 import os
 import platform
 import shutil
-import statistics
 import subprocess
 import sys
 import tempfile
@@ -102,6 +101,13 @@ def sklearn_raw(est, X):
 
 # ------------------------------------------------------------------------------------------
 # Part 1: the shipped C target against scikit-learn
+
+def openmp_threads():
+    """How many OpenMP threads scikit-learn's compiled code would use now."""
+    from threadpoolctl import threadpool_info
+
+    return max([p["num_threads"] for p in threadpool_info() if p["user_api"] == "openmp"] or [1])
+
 
 def onnx_session(ensemble):
     """(run one row, output name) with onnxruntime on boxwood's exact graph, or None."""
@@ -169,11 +175,28 @@ def bench_engines(key, label, est, ensemble, model, make_X, one_rows, one_repeat
             ("one row: pure-Python Model.predict(list)", model.predict, lists, None)]
     if ort_run:
         ones.append(("one row: onnxruntime %s, 1 thread" % ort_run[1], ort_run[0], arrays, None))
+    t1 = {}
     for what, fn, args, goal in ones:
-        t = median_seconds_per_call(fn, args, one_repeats)
+        t = t1[what] = median_seconds_per_call(fn, args, one_repeats)
         res.append(dict(model=key, measurement=what, value="%.2f us" % (t * 1e6),
                         reference="%.1f us sklearn" % (t1_sk * 1e6), ratio=t / t1_sk, goal=goal,
                         seconds=t, reference_seconds=t1_sk))
+    if openmp_threads() > 1 and type(est).__name__.startswith("HistGradientBoosting"):
+        # scikit-learn's histogram models predict with OpenMP threads (boxwood's engines use one):
+        # the goals are also checked against scikit-learn on one thread, which a busy machine
+        # disturbs far less (a thread that waits for a descheduled one can cost milliseconds)
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(1, user_api="openmp"):
+            tb_sk1 = median_seconds(est.predict, X, batch_repeats)
+            t1_sk1 = median_seconds_per_call(est.predict, arrays, one_repeats)
+        res.append(dict(model=key, measurement="batch %s: BatchModel engine=c, vs sklearn 1 thread" % rows_s,
+                        value="%.1f ms" % (tb_c * 1e3), reference="%.1f ms sklearn 1t" % (tb_sk1 * 1e3),
+                        ratio=tb_c / tb_sk1, goal=C_GOAL_BATCH, seconds=tb_c, reference_seconds=tb_sk1))
+        what = ones[0][0]
+        res.append(dict(model=key, measurement=what + ", vs sklearn 1 thread", value="%.2f us" % (t1[what] * 1e6),
+                        reference="%.1f us sklearn 1t" % (t1_sk1 * 1e6), ratio=t1[what] / t1_sk1, goal=C_GOAL_ONE,
+                        seconds=t1[what], reference_seconds=t1_sk1))
     info = {"native_build_seconds": build_s, "onnxruntime": ort_run[1] if ort_run else None}
     return res, info
 
@@ -257,7 +280,8 @@ def branch_source(ensemble, prefix="br"):
 
 # The table engine's walk is static in the generated file; this line, appended to the file,
 # makes it callable from the timing main (one call per row, as the branch code's raw).
-TABLE_WRAPPER = "\nint %s_walk_ext(const double *v, double *acc) { return %s_walk(v, acc); }\n"
+TABLE_WRAPPER = ("\nint %(p)s_walk_ext(const double *v, double *acc);\n"
+                 "int %(p)s_walk_ext(const double *v, double *acc) { return %(p)s_walk(v, acc); }\n")
 
 TIMING_MAIN = r"""/* Host timing of the two layouts (benchmarks/bench_c.py). */
 #define _POSIX_C_SOURCE 199309L
@@ -375,6 +399,45 @@ int main(void)
 }
 """
 
+M4_TIMING_MAIN = r"""/* Instructions per row on the Cortex-M4 under QEMU -icount (benchmarks/bench_c.py). With
+   -icount shift=0 each instruction advances QEMU's clock by 1 ns, and SysTick on the processor
+   clock (25 MHz on mps2-an386) counts one tick per 40 instructions. */
+#include <stdint.h>
+#include <stdio.h>
+#include <string.h>
+int %(fn)s(const double *v, double *acc);
+#define SYST_CSR (*(volatile uint32_t *)0xE000E010u)
+#define SYST_RVR (*(volatile uint32_t *)0xE000E014u)
+#define SYST_CVR (*(volatile uint32_t *)0xE000E018u)
+static const double rows[%(n)d][%(nf)d] = {
+%(rows)s
+};
+static double sums[%(n)d][%(k)d];
+int main(void)
+{
+    uint32_t t0, t1;
+    int i, k;
+    SYST_RVR = 0xFFFFFFu;
+    SYST_CVR = 0u;
+    SYST_CSR = 5u; /* enabled, processor clock, no interrupt */
+    t0 = SYST_CVR;
+    for (i = 0; i < %(n)d; ++i) {
+        %(fn)s(rows[i], sums[i]);
+    }
+    t1 = SYST_CVR;
+    printf("ticks %%lu\n", (unsigned long)((t0 - t1) & 0xFFFFFFu));
+    for (i = 0; i < %(n)d; ++i) {
+        for (k = 0; k < %(k)d; ++k) {
+            uint64_t b;
+            memcpy(&b, &sums[i][k], sizeof b);
+            printf("%%08lx%%08lx\n", (unsigned long)(b >> 32), (unsigned long)(b & 0xFFFFFFFFu));
+        }
+    }
+    return 0;
+}
+"""
+M4_TICK_INSTRUCTIONS = 40  # at -icount shift=0 and a 25 MHz SysTick
+
 BASELINE_FN = r"""/* Baseline: no model; touches the values so the program keeps its shape. */
 int base_raw(const double *v, double *acc);
 int base_raw(const double *v, double *acc)
@@ -393,7 +456,7 @@ def _cc(cmd, what):
     return time.perf_counter() - t0
 
 
-def bench_layouts(key, label, est, ensemble, model, make_X, work, n_rows, repeats):
+def bench_layouts(key, label, est, ensemble, model, make_X, work, n_rows, repeats, m4_rows):
     """Part 2 for one model: sizes on the Cortex-M4, host speed, exactness."""
     from boxwood.formats.c import board
     from boxwood_runtime.batch import BatchModel
@@ -404,7 +467,7 @@ def bench_layouts(key, label, est, ensemble, model, make_X, work, n_rows, repeat
     d = os.path.join(work, key)
     os.makedirs(d)
     c_text, h_text = generate(model, "tab")
-    c_text += TABLE_WRAPPER % ("tab", "tab")
+    c_text += TABLE_WRAPPER % {"p": "tab"}
     b_text = branch_source(ensemble, "br")
     paths = {}
     for name, text in (("tab.c", c_text), ("tab.h", h_text), ("br.c", b_text)):
@@ -489,8 +552,40 @@ def bench_layouts(key, label, est, ensemble, model, make_X, work, n_rows, repeat
             elf = board.build_elf(elf_dir, [m, src], include_dirs=[d], name=name)
             sizes[name + "_elf"] = board.footprint(elf)
         sizes["compile_seconds_m4"] = arm
-    return {"key": key, "label": label, "exact": exact, "host_seconds": times, "host_compile_seconds": host,
+        m4 = m4_instructions(board, d, paths, batch.prepare(X[:m4_rows]), sklearn_raw(est, X[:m4_rows]),
+                             model.n_outputs)
+    else:
+        m4 = None
+    return {"m4": m4,"key": key, "label": label, "exact": exact, "host_seconds": times, "host_compile_seconds": host,
             "sizes": sizes, "n_rows": n_rows, "table_source_bytes": len(c_text), "branch_source_bytes": len(b_text)}
+
+
+def m4_instructions(board, d, paths, v, want, k):
+    """Instructions per row of each layout on the Cortex-M4 (QEMU -icount), one row at a time,
+    and whether the board's raw sums are scikit-learn's bit for bit. None when QEMU fails."""
+    rows = ",\n".join("    {" + ", ".join(_hex(x) for x in r) + "}" for r in v)
+    out = {"rows": len(v)}
+    for name, fn in (("tab", "tab_walk_ext"), ("br", "br_raw")):
+        elf_dir = os.path.join(d, "m4_" + name)
+        os.makedirs(elf_dir)
+        m = os.path.join(elf_dir, "main.c")
+        with open(m, "w", encoding="utf-8") as fh:
+            fh.write(M4_TIMING_MAIN % dict(fn=fn, n=len(v), nf=v.shape[1], k=k, rows=rows))
+        elf = board.build_elf(elf_dir, [m, paths[name + ".c"]], include_dirs=[d], name="m4_" + name)
+        cmd = board.qemu_command(elf, board.toolchain().qemu) + ["-icount", "shift=0"]
+        try:
+            done = subprocess.run(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                  text=True, timeout=300)
+        except subprocess.TimeoutExpired:
+            return None
+        lines = done.stdout.split()
+        if done.returncode != 0 or len(lines) != 2 + len(v) * k or lines[0] != "ticks":
+            print("M4 run of %s failed:\n%s%s" % (name, done.stderr[-1000:], done.stdout[-1000:]))
+            return None
+        got = np.array([int(h, 16) for h in lines[2:]], dtype=np.uint64).view(np.float64).reshape(len(v), k)
+        out[name] = {"instructions_per_row": int(lines[1]) * M4_TICK_INSTRUCTIONS / len(v),
+                     "eq_sklearn": bool(np.array_equal(got, want))}
+    return out
 
 
 def layout_rows(r):
@@ -505,12 +600,18 @@ def layout_rows(r):
         et, eb = s["tab_elf"]["flash"] - base, s["br_elf"]["flash"] - base
         rows.append(dict(model=key, measurement="M4 flash, linked raw path only: branch vs table",
                          value="%d B" % eb, reference="%d B table" % et, ratio=eb / et))
+    m4 = r["m4"]
+    if m4:
+        it, ib = m4["tab"]["instructions_per_row"], m4["br"]["instructions_per_row"]
+        rows.append(dict(model=key, measurement="M4 instructions per row (QEMU icount): branch vs table",
+                         value="%.0f" % ib, reference="%.0f table" % it, ratio=ib / it))
     rows.append(dict(model=key, measurement="host one prepared row: branch vs table",
                      value="%.3f us" % (t["one_branch"] * 1e6), reference="%.3f us table" % (t["one_table"] * 1e6),
                      ratio=t["one_branch"] / t["one_table"]))
     rows.append(dict(model=key, measurement="host batch, per row: branch vs table",
                      value="%.3f us" % (t["batch_branch"] * 1e6),
-                     reference="%.3f us table" % (t["batch_table"] * 1e6), ratio=t["batch_branch"] / t["batch_table"]))
+                     reference="%.3f us table" % (t["batch_table"] * 1e6),
+                     ratio=t["batch_branch"] / t["batch_table"]))
     hc = r["host_compile_seconds"]
     rows.append(dict(model=key, measurement="host compile time (cc -O2): branch vs table",
                      value="%.2f s" % hc["br"], reference="%.2f s table" % hc["tab"], ratio=hc["br"] / hc["tab"]))
@@ -547,7 +648,8 @@ def versions():
 def print_table(rows):
     head = ("model", "measurement", "measured", "reference", "ratio", "goal")
     cells = [(r["model"], r["measurement"], r["value"], r["reference"], "%.4f" % r["ratio"],
-              "" if r.get("goal") is None else "<= %g: %s" % (r["goal"], "met" if r["ratio"] <= r["goal"] else "MISSED"))
+              "" if r.get("goal") is None else
+              "<= %g: %s" % (r["goal"], "met" if r["ratio"] <= r["goal"] else "MISSED"))
              for r in rows]
     widths = [max(len(c[i]) for c in cells + [head]) for i in range(6)]
     line = "  ".join("%-*s" % (w, h) for w, h in zip(widths, head))
@@ -562,26 +664,38 @@ def main(argv=None):
     p.add_argument("--quick", action="store_true", help="fewer repeats and rows, for a short run")
     p.add_argument("--batch-rows", type=int, default=None, help="rows in the batch timing (100000; quick 20000)")
     p.add_argument("--json", metavar="FILE", help="also save the numbers as JSON")
+    p.add_argument("--sklearn-threads", type=int, default=None,
+                   help="limit scikit-learn's OpenMP/BLAS threads (threadpoolctl) for the whole run; "
+                        "default: scikit-learn's own (all cores; only the histogram model uses them)")
     args = p.parse_args(argv)
+    if args.sklearn_threads:
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(args.sklearn_threads):
+            return run(args)
+    return run(args)
+
+
+def run(args):
     if args.quick:
-        one_rows, one_repeats, batch_repeats, layout_rows_n, layout_repeats = 100, 5, 3, 10000, 5
+        one_rows, one_repeats, batch_repeats, layout_rows_n, layout_repeats, m4_rows = 100, 5, 3, 10000, 5, 20
         batch_rows = args.batch_rows or 20000
     else:
-        one_rows, one_repeats, batch_repeats, layout_rows_n, layout_repeats = 200, 21, 7, 10000, 21
+        one_rows, one_repeats, batch_repeats, layout_rows_n, layout_repeats, m4_rows = 200, 15, 7, 10000, 21, 100
         batch_rows = args.batch_rows or 100000
 
     work = tempfile.mkdtemp(prefix="bench_c-")
     os.environ.setdefault("BOXWOOD_CACHE", os.path.join(work, "cache"))  # a fresh build, removed after
     try:
         env = versions()
-        print("python %s, numpy %s, scikit-learn %s, %s; %s, %d CPUs, %s%s" % (
+        print("python %s, numpy %s, scikit-learn %s, %s; %s, %d CPUs, %s; scikit-learn threads: %s%s" % (
             env["python"], env["numpy"], env["scikit-learn"], env["cc"], env["cpu"], env["cpus"], env["machine"],
-            ", quick run" if args.quick else ""))
+            args.sklearn_threads or "default (%d OpenMP)" % openmp_threads(), ", quick run" if args.quick else ""))
         from boxwood.export import build
         from boxwood.formats.json.writer import to_bytes
         from boxwood_runtime import load
 
-        rows, models, layouts = [], {}, []
+        rows, models, layouts, pending = [], {}, [], []
         for key, label, est, make_X in fit_models():
             ensemble = build(est)
             model = load(to_bytes(ensemble))
@@ -594,8 +708,12 @@ def main(argv=None):
             models[key] = dict(label=label, n_trees=s["n_trees"], n_nodes=s["n_nodes"], max_depth=s["max_depth"],
                                **info)
             if key in ("gbr", "rf"):
-                r = bench_layouts(key, label, est, ensemble, model, make_X, work, layout_rows_n, layout_repeats)
-                layouts.append(r)
+                pending.append((key, label, est, ensemble, model, make_X))
+        # part 2 after every part-1 timing: compiling the branch code loads the machine
+        for key, label, est, ensemble, model, make_X in pending:
+            print("%s: table-driven vs branch code (compiling for the host and the Cortex-M4)" % key, flush=True)
+            layouts.append(bench_layouts(key, label, est, ensemble, model, make_X, work, layout_rows_n,
+                                         layout_repeats, m4_rows))
         for r in layouts:
             rows += layout_rows(r)
         print()
@@ -605,17 +723,19 @@ def main(argv=None):
               "smaller or faster).")
         for r in layouts:
             e = r["exact"]
-            print("%s: %d rows, raw sums bit-identical table = branch = scikit-learn: %s; with 10%% NaN: "
-                  "table = branch %s, = scikit-learn %s" % (
-                      r["key"], r["n_rows"], e["data"]["table_eq_branch"] and e["data"]["eq_sklearn"],
-                      e["nan"]["table_eq_branch"],
-                      "not run (scikit-learn refuses NaN)" if e["nan"]["eq_sklearn"] is None
-                      else e["nan"]["eq_sklearn"]))
+            print("%s: %d rows, raw sums bit-identical table = branch = scikit-learn: %s; with 10%% NaN: %s" % (
+                r["key"], r["n_rows"], e["data"]["table_eq_branch"] and e["data"]["eq_sklearn"],
+                "not run (the model refuses missing values)" if e["nan"]["table_eq_branch"] is None else
+                "table = branch %s, = scikit-learn %s" % (e["nan"]["table_eq_branch"], e["nan"]["eq_sklearn"])))
+            if r["m4"]:
+                print("%s: on the Cortex-M4 (QEMU), %d rows: table = scikit-learn %s, branch = scikit-learn %s"
+                      % (r["key"], r["m4"]["rows"], r["m4"]["tab"]["eq_sklearn"], r["m4"]["br"]["eq_sklearn"]))
         for key, m in models.items():
             print("%s: native build (generate + compile) %.2f s" % (key, m["native_build_seconds"]))
         if args.json:
             with open(args.json, "w", encoding="utf-8") as fh:
-                json.dump({"environment": env, "quick": args.quick, "batch_rows": batch_rows,
+                json.dump({"environment": env, "quick": args.quick, "sklearn_threads": args.sklearn_threads,
+                           "batch_rows": batch_rows,
                            "one_rows": one_rows, "models": models, "rows": rows, "layouts": layouts},
                           fh, indent=1, sort_keys=True)
             print("saved", args.json)

@@ -13,8 +13,9 @@ trigraph.
 
 Inputs: ``x[j]`` is input ``j`` in the order of ``PREFIX_input_names`` (the features, or a
 pipeline's raw fields), NaN for missing; a categorical feature with numeric categories takes
-the category value; one with text categories takes the category's position in
-``PREFIX_category_labels`` (C has no strings to match). A pipeline whose steps work on text
+the category value; one with text categories takes the category's position (0, 1, ...) among
+that feature's categories (C has no strings to match; ``PREFIX_category_labels`` lists the
+categorical features' labels one feature after another, in input order). A pipeline whose steps work on text
 (imputing a string, encoding text categories) is refused with :class:`CTargetError` naming
 the field and the step.
 
@@ -366,7 +367,8 @@ def header(prefix, task, preprocesses, n_inputs, n_exact, n_predictions, n_class
         " *",
         " * x[j] is input j, in the order of %s_input_names: %s. NaN means missing." % (prefix, inputs),
         " * A categorical input with numeric categories carries the category value; one with text",
-        " * categories carries the category's position in %s_category_labels." % prefix,
+        " * categories carries the category's position (0, 1, ...) among that feature's categories;",
+        " * %s_category_labels lists the categorical inputs' labels one input after another." % prefix,
         " * Every function returns %s_OK (0) or one of the %s_ERR_ codes below; on an error" % (up, up),
         " * nothing is written for that record.",
         " */",
