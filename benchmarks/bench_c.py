@@ -29,9 +29,12 @@ the same float64 additions in tree order. Both layouts are compared on:
 - host speed (cc -O2, a timing main with clock_gettime): one prepared row at a time, and
   a batch of prepared rows (the table engine's blocked ``walk_many``; the branch code has
   no batch form, so it loops over the rows);
+- M4 instructions per row: QEMU -icount with SysTick, one row at a time (a deterministic
+  count of instructions, not of cycles);
 - exactness: both layouts' raw sums bit for bit against each other and scikit-learn's raw
-  scores on 10,000 rows (and on the same rows with a tenth of the values made NaN, where
-  scikit-learn accepts them), checked before anything is timed.
+  scores on 10,000 rows, and on the same rows with a tenth of the values made NaN where the
+  model accepts missing values (checked before the host timings), and the sums the board
+  computed for the M4 rows (a difference stops the run).
 
 Every figure is a median of repeated timings (time.perf_counter in Python, clock_gettime
 in C); one-row timings cycle over a fixed set of different rows. Ratios divide by a
@@ -39,7 +42,7 @@ reference measured in this run (below 1: the measured side is faster or smaller)
 timing, every output is checked against scikit-learn's: raw values exactly for the
 regressor, labels for the classifiers.
 
-    python benchmarks/bench_c.py                  # full run (about five minutes on 2 cores)
+    python benchmarks/bench_c.py                  # full run (one to three minutes on 2 cores)
     python benchmarks/bench_c.py --quick          # a short run
     python benchmarks/bench_c.py --json out.json  # also save the numbers
 """
@@ -281,7 +284,10 @@ def branch_source(ensemble, prefix="br"):
 # The table engine's walk is static in the generated file; this line, appended to the file,
 # makes it callable from the timing main (one call per row, as the branch code's raw).
 TABLE_WRAPPER = ("\nint %(p)s_walk_ext(const double *v, double *acc);\n"
-                 "int %(p)s_walk_ext(const double *v, double *acc) { return %(p)s_walk(v, acc); }\n")
+                 "int %(p)s_walk_ext(const double *v, double *acc)\n"
+                 "{\n    int j, has_nan = 0;\n"
+                 "    for (j = 0; j < %(P)s_N_TREE_FEATURES; ++j) {\n        has_nan |= v[j] != v[j];\n    }\n"
+                 "    return %(p)s_walk(v, acc, has_nan);\n}\n")
 
 TIMING_MAIN = r"""/* Host timing of the two layouts (benchmarks/bench_c.py). */
 #define _POSIX_C_SOURCE 199309L
@@ -467,7 +473,7 @@ def bench_layouts(key, label, est, ensemble, model, make_X, work, n_rows, repeat
     d = os.path.join(work, key)
     os.makedirs(d)
     c_text, h_text = generate(model, "tab")
-    c_text += TABLE_WRAPPER % {"p": "tab"}
+    c_text += TABLE_WRAPPER % {"p": "tab", "P": "TAB"}
     b_text = branch_source(ensemble, "br")
     paths = {}
     for name, text in (("tab.c", c_text), ("tab.h", h_text), ("br.c", b_text)):
@@ -585,6 +591,7 @@ def m4_instructions(board, d, paths, v, want, k):
         got = np.array([int(h, 16) for h in lines[2:]], dtype=np.uint64).view(np.float64).reshape(len(v), k)
         out[name] = {"instructions_per_row": int(lines[1]) * M4_TICK_INSTRUCTIONS / len(v),
                      "eq_sklearn": bool(np.array_equal(got, want))}
+        assert out[name]["eq_sklearn"], "the %s layout's sums on the Cortex-M4 are not scikit-learn's" % name
     return out
 
 

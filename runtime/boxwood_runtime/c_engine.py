@@ -123,14 +123,17 @@ static int PFX_prepare(const double *x, double *v)
     return PFXU_OK;
 }
 
-static int PFX_walk(const double *v, double *acc);
+static int PFX_walk(const double *v, double *acc, int nan_possible);
 
 /* Raw scores: base value plus one leaf per tree, in tree order, in double. */
 static int PFX_scores(const double *x, double *acc)
 {
     double v[PFXU_N_TREE_FEATURES];
-    int rc = PFX_prepare(x, v);
-    return rc == PFXU_OK ? PFX_walk(v, acc) : rc;
+    int j, has_nan = 0, rc = PFX_prepare(x, v);
+    for (j = 0; j < PFXU_N_TREE_FEATURES; ++j) {
+        has_nan |= v[j] != v[j];
+    }
+    return rc == PFXU_OK ? PFX_walk(v, acc, has_nan) : rc;
 }
 
 /* The trees on prepared values (category codes, float-rounded where the model compares in float). */
@@ -164,9 +167,10 @@ static long PFX_next(long n, double xv, int nan_possible)
 /* The raw sums of one record's prepared values. Trees go in groups of PFXU_GROUP, stepped
    down together one level at a time so that their walks overlap in the processor; the
    leaves are then added one by one in tree order, so the sums are those of a tree-by-tree
-   walk bit for bit. Every loop is bounded by the tables' sizes and the model's depth. */
+   walk bit for bit. Every loop is bounded by the tables' sizes and the model's depth.
+   nan_possible = 0 promises that no value in v is NaN (one comparison per split). */
 #define PFXU_GROUP 8
-static int PFX_walk(const double *v, double *acc)
+static int PFX_walk(const double *v, double *acc, int nan_possible)
 {
     long node[PFXU_GROUP];
     int t0, g, k, d;
@@ -183,7 +187,7 @@ static int PFX_walk(const double *v, double *acc)
             for (g = 0; g < count; ++g) {
                 int f = PFX_feature[node[g]];
                 if (f >= 0) {
-                    node[g] = PFX_next(node[g], v[f], 1);
+                    node[g] = nan_possible ? PFX_next(node[g], v[f], 1) : PFX_next(node[g], v[f], 0);
                     moved = 1;
                 }
             }
@@ -468,6 +472,7 @@ size_t PFX_score_many(size_t n, const double *x, double *raw, double *out, int *
 size_t PFX_walk_many(size_t n, const double *v, double *sums)
 {
     long node[PFXU_BLOCK];
+    int active[PFXU_BLOCK];
     size_t start, failed = 0;
     for (start = 0; start < n; start += PFXU_BLOCK) {
         const double *vb = v + start * PFXU_N_TREE_FEATURES;
@@ -483,22 +488,23 @@ size_t PFX_walk_many(size_t n, const double *v, double *sums)
             }
         }
         for (t = 0; t < PFXU_N_TREES; ++t) {
+            int n_active = m;
             for (r = 0; r < m; ++r) {
                 node[r] = PFX_root[t];
+                active[r] = r;
             }
-            for (d = 0; d < PFXU_MAX_DEPTH; ++d) {
-                int moved = 0;
-                for (r = 0; r < m; ++r) {
-                    int f = PFX_feature[node[r]];
+            /* each level steps only the rows still at a split (deep, lopsided trees) */
+            for (d = 0; d < PFXU_MAX_DEPTH && n_active > 0; ++d) {
+                int a, kept = 0;
+                for (a = 0; a < n_active; ++a) {
+                    int row = active[a], f = PFX_feature[node[row]];
                     if (f >= 0) {
-                        double xv = vb[r * PFXU_N_TREE_FEATURES + f];
-                        node[r] = has_nan ? PFX_next(node[r], xv, 1) : PFX_next(node[r], xv, 0);
-                        moved = 1;
+                        double xv = vb[row * PFXU_N_TREE_FEATURES + f];
+                        node[row] = has_nan ? PFX_next(node[row], xv, 1) : PFX_next(node[row], xv, 0);
+                        active[kept++] = row;
                     }
                 }
-                if (!moved) {
-                    break;
-                }
+                n_active = kept;
             }
             for (r = 0; r < m; ++r) {
                 if (PFX_feature[node[r]] >= 0) {
