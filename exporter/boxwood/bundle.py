@@ -229,35 +229,51 @@ def make_bundle(source: Union[str, Path], out_dir: Union[str, Path], zip_file: b
     then renamed)."""
     import boxwood_runtime
 
-    out = Path(out_dir)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise BundleError("%s exists and is not an empty folder; choose a new folder" % out)
+    out = _free_folder(out_dir)
     data = artefact_from(source, reference_rows=reference_rows)
     foot = footprint(data, measure=measure, port=port)
     model = boxwood_runtime.load(data)
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        work = Path(tempfile.mkdtemp(prefix="." + out.name + ".", dir=str(out.parent)))
-    except OSError as exc:  # name the user's folder, not our temporary one
-        raise BundleError("cannot write the bundle folder %s: %s" % (out, exc.strerror or exc))
+    work = _work_folder(out)
     try:
         (work / ARTEFACT).write_bytes(data)
         for name in RUNTIME_FILES:
             shutil.copyfile(runtime_dir() / name, work / name)
         (work / README).write_text(readme_text(model, foot), encoding="utf-8")
         manifest = write_manifest(work, foot)
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(work, 0o777 & ~mask)  # mkdtemp made it private
-        if out.exists():
-            out.rmdir()
-        os.replace(work, out)
+        _publish(work, out)
     except BaseException:
         shutil.rmtree(work, ignore_errors=True)
         raise
     if zip_file:
         write_zip(out)
     return manifest
+
+
+def _free_folder(out_dir: Union[str, Path]) -> Path:
+    """``out_dir`` as a Path; BundleError unless it is new or an empty folder."""
+    out = Path(out_dir)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise BundleError("%s exists and is not an empty folder; choose a new folder" % out)
+    return out
+
+
+def _work_folder(out: Path) -> Path:
+    """A private folder beside ``out`` to build the bundle in."""
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        return Path(tempfile.mkdtemp(prefix="." + out.name + ".", dir=str(out.parent)))
+    except OSError as exc:  # name the user's folder, not our temporary one
+        raise BundleError("cannot write the bundle folder %s: %s" % (out, exc.strerror or exc))
+
+
+def _publish(work: Path, out: Path) -> None:
+    """Give ``work`` the usual permissions and rename it to ``out`` (complete or not at all)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(work, 0o777 & ~mask)  # mkdtemp made it private
+    if out.exists():
+        out.rmdir()
+    os.replace(work, out)
 
 
 def write_zip(folder: Union[str, Path]) -> Path:
