@@ -426,7 +426,8 @@ def c_readme_text(ensemble: Any, prefix: str, foot: Dict[str, Any], digest: str,
            "      %d value%s: %s" % (n_out, "" if n_out == 1 else "s", what[ensemble.task])]
     if ensemble.classes:
         api += ["  int %s_label(const double *x, int *label);" % P,
-                "      the predicted class, an index into %s_class_labels: %s" % (P, _listed(list(ensemble.classes), True))]
+                "      the predicted class, an index into %s_class_labels: %s"
+                % (P, _listed(list(ensemble.classes), True))]
     api += ["  size_t %s_score_many(size_t n, const double *x, double *raw, double *out, int *label, int *status);" % P,
             "      n records at once (see %s.h)" % P,
             "Every function returns one of these codes (%s.h); on an error nothing is written:" % P]

@@ -385,13 +385,14 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
     With ``expected_raw`` (one list of n_outputs values per row) the program also checks
     itself on the device: every row must return 0 and give the expected raw values bit for
     bit, and, with ``expected_out``, predictions within ``out_ulps`` units in the last place.
-    After ``done`` it prints ``mismatch row <i>: ...`` for each row that differs and then
+    A row that differs is followed by ``mismatch row <i>: ...``; after ``done`` comes
     ``PASS: ...`` (status 0) or ``FAIL: ...`` (status 1, which make and QEMU pass on)."""
     _check_prefix(prefix)
     rows = [list(r) for r in rows]
     if n_outputs < 1 or n_predictions < 1:
         raise ValueError("n_outputs and n_predictions must be at least 1")
-    for name, table, width in (("expected_raw", expected_raw, n_outputs), ("expected_out", expected_out, n_predictions)):
+    for name, table, width in (("expected_raw", expected_raw, n_outputs),
+                               ("expected_out", expected_out, n_predictions)):
         if table is not None and (len(table) != len(rows) or any(len(t) != width for t in table)):
             raise ValueError("%s must hold %d values for each of the %d rows" % (name, width, len(rows)))
     if expected_out is not None and expected_raw is None:
@@ -453,7 +454,8 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
     checking = expected_raw is not None
     if checking:
         lines += _expectations_c(expected_raw, expected_out, len(rows), out_ulps)
-    lines += ["int main(void)", "{", "    unsigned long i;"] + (["    unsigned long failed = 0;"] if checking else []) + [
+    lines += ["int main(void)", "{", "    unsigned long i;"] + (
+        ["    unsigned long failed = 0;"] if checking else []) + [
         "    for (i = 0; i < n_rows; i++) {",
         "        double raw[BOXWOOD_N_OUTPUTS], out[BOXWOOD_N_PREDICTIONS];",
         "        int rc, prc;",
