@@ -276,6 +276,25 @@ def test_make_qemu_gives_the_same_bits_and_the_manifests_footprint(name, made, t
     assert m4["model"]["ram"] == 0  # every table is const: the model needs no RAM but its stack
 
 
+def test_numeric_pipeline_runs_its_steps_in_c_on_the_host(cache, tmp_path):
+    """Median imputation and an ordinal encoder run in C: make host gives scikit-learn's predict."""
+    _need("make", "cc")
+    from test_c_target import numeric_pipeline
+
+    model, _ = numeric_pipeline()
+    joblib.dump(model, tmp_path / "pipe.joblib")
+    folder = tmp_path / "b"
+    assert main(["bundle", str(tmp_path / "pipe.joblib"), "--target", "c", "-o", str(folder), "--c-prefix", "pump"]) == 0
+    readme = (folder / "README.txt").read_text()
+    assert "x[0]  x0  (a number; imputed in C)" in readme and "x[1]  x1  (a number; encoded in C)" in readme
+    done = make(folder, "host")
+    assert done.returncode == 0, done.stderr
+    rows = main_c_rows(folder)
+    want = model.predict(np.array(rows))  # identity regressor: predict is the raw score
+    assert [bits(raw[0]) for _, raw, _ in board.parse_selftest_output(done.stdout)] == [bits(v) for v in want]
+    assert any(v != v for r in rows for v in r) and done.stdout.strip().splitlines()[-1].startswith("PASS")
+
+
 def test_a_wrong_expected_value_makes_the_example_fail(made, tools, tmp_path):
     """Planted fault: one expected raw value one ulp off. The example prints FAIL and exits 1
     on the board, and the bundle is not made (the post-write check fails: exit 1)."""

@@ -371,10 +371,9 @@ def c_inputs(ensemble: Any, prefix: str) -> List[str]:
     if ensemble.fields is not None:  # a pipeline: raw fields, the steps run in C
         lines = []
         for j, field in enumerate(ensemble.fields):
-            steps = sorted({st["op"] for f in ensemble.features if f.source and f.source["field"] == field
-                            for st in f.source["steps"]})
-            lines.append("  x[%d]  %s  (a number; the pipeline's %s runs in C)" % (
-                j, field, " and ".join(steps)) if steps else "  x[%d]  %s  (a number)" % (j, field))
+            done = sorted({st["op"] + "d" for f in ensemble.features if f.source and f.source["field"] == field
+                           for st in f.source["steps"]})  # "imputed", "encoded"
+            lines.append("  x[%d]  %s  (a number%s)" % (j, field, "; %s in C" % " and ".join(done) if done else ""))
         return lines
     out = []
     for j, f in enumerate(ensemble.features):
