@@ -16,6 +16,10 @@ The bundle is deterministic: the same artefact and the same boxwood give the sam
 bytes (no dates; ``--zip`` writes fixed timestamps), so a bundle can be compared with
 another by its manifest.
 
+``make_c_bundle`` (``boxwood bundle --target c``) makes a folder for a microcontroller project
+instead: the model as C99 source, an example that checks the reference rows, the Cortex-M4
+board files and a Makefile (see "the C target" below); its manifest has ``"target": "c"``.
+
 The manifest guards against damage and mix-ups (a copy cut short, a file from another
 bundle, a scorer of another version); it is not a signature against a deliberate
 attacker who can rewrite both a file and the manifest.
@@ -26,10 +30,12 @@ import hashlib
 import json
 import os
 import shutil
+import subprocess
 import tempfile
+import textwrap
 import zipfile
 from pathlib import Path
-from typing import Any, Dict, Optional, Union
+from typing import Any, Dict, List, Optional, Union
 
 from . import __version__
 
@@ -229,35 +235,51 @@ def make_bundle(source: Union[str, Path], out_dir: Union[str, Path], zip_file: b
     then renamed)."""
     import boxwood_runtime
 
-    out = Path(out_dir)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise BundleError("%s exists and is not an empty folder; choose a new folder" % out)
+    out = _free_folder(out_dir)
     data = artefact_from(source, reference_rows=reference_rows)
     foot = footprint(data, measure=measure, port=port)
     model = boxwood_runtime.load(data)
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        work = Path(tempfile.mkdtemp(prefix="." + out.name + ".", dir=str(out.parent)))
-    except OSError as exc:  # name the user's folder, not our temporary one
-        raise BundleError("cannot write the bundle folder %s: %s" % (out, exc.strerror or exc))
+    work = _work_folder(out)
     try:
         (work / ARTEFACT).write_bytes(data)
         for name in RUNTIME_FILES:
             shutil.copyfile(runtime_dir() / name, work / name)
         (work / README).write_text(readme_text(model, foot), encoding="utf-8")
         manifest = write_manifest(work, foot)
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(work, 0o777 & ~mask)  # mkdtemp made it private
-        if out.exists():
-            out.rmdir()
-        os.replace(work, out)
+        _publish(work, out)
     except BaseException:
         shutil.rmtree(work, ignore_errors=True)
         raise
     if zip_file:
         write_zip(out)
     return manifest
+
+
+def _free_folder(out_dir: Union[str, Path]) -> Path:
+    """``out_dir`` as a Path; BundleError unless it is new or an empty folder."""
+    out = Path(out_dir)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise BundleError("%s exists and is not an empty folder; choose a new folder" % out)
+    return out
+
+
+def _work_folder(out: Path) -> Path:
+    """A private folder beside ``out`` to build the bundle in."""
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        return Path(tempfile.mkdtemp(prefix="." + out.name + ".", dir=str(out.parent)))
+    except OSError as exc:  # name the user's folder, not our temporary one
+        raise BundleError("cannot write the bundle folder %s: %s" % (out, exc.strerror or exc))
+
+
+def _publish(work: Path, out: Path) -> None:
+    """Give ``work`` the usual permissions and rename it to ``out`` (complete or not at all)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(work, 0o777 & ~mask)  # mkdtemp made it private
+    if out.exists():
+        out.rmdir()
+    os.replace(work, out)
 
 
 def write_zip(folder: Union[str, Path]) -> Path:
@@ -274,3 +296,257 @@ def write_zip(folder: Union[str, Path]) -> Path:
             zf.writestr(info, path.read_bytes())
     os.replace(tmp, target)
     return target
+
+
+# ------------------------------------------------------------------------------------ the C target
+# ``boxwood bundle MODEL --target c``: a folder for a microcontroller project. It holds NAME.c and
+# NAME.h (the C target), main.c (runs the reference rows and checks them: PASS or FAIL), startup.c
+# and link.ld (the Cortex-M4 board of boxwood.formats.c.board), a Makefile (all, host, qemu, clean),
+# README.txt and manifest.json (target "c": every file's sha256 and size, the versions, the digest
+# of the artefact the C was generated from, and the Cortex-M4 footprint from arm-none-eabi-size).
+
+C_PREFIX = "model"
+C_EXAMPLE = "main.c"
+C_RESERVED = ("main", "startup")  # prefixes whose NAME.c would be a board file
+C_BOARD = "QEMU mps2-an386: Cortex-M4 with the single-precision FPU (FPv4-SP)"
+C_HOW = ("arm-none-eabi-size -B of the model's own object (NAME.c compiled alone, before linking: "
+         "every function of the C target) and of the linked example program (NAME.c, main.c with "
+         "the reference rows, startup.c, newlib-nano with semihosting and its printf), built with "
+         "the flags in cflags; flash = text + data, ram = data + bss; the stack comes on top")
+_MAX_SHOWN = 12  # categories or classes listed per line in the README
+
+
+def c_rows(ensemble: Any) -> List[List[float]]:
+    """The ensemble's reference rows as the C code takes them (formats.c.evaluators.CInputs):
+    None as NaN, a text category as its position among the feature's categories."""
+    from .formats.c.evaluators import CInputs
+
+    return [[float(v) for v in row] for row in CInputs(ensemble).matrix(ensemble.reference.rows).tolist()]
+
+
+def c_footprint(folder: Path, prefix: str) -> Dict[str, Any]:
+    """Build ``folder``'s NAME.c and main.c for the Cortex-M4 in a temporary folder (as its
+    Makefile does), measure both with arm-none-eabi-size and run the example under QEMU, which
+    must print PASS (BundleCheckFailed otherwise). ``{"measured": False, "why": ...}`` when the
+    toolchain is not here."""
+    from .formats.c import board
+
+    reason = board.unavailable_reason()
+    if reason:
+        return {"measured": False, "why": "not measured: " + reason}
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        for name in (prefix + ".c", prefix + ".h", C_EXAMPLE):
+            shutil.copyfile(folder / name, work / name)
+        try:
+            elf = board.build_elf(work, [work / (prefix + ".c"), work / C_EXAMPLE], include_dirs=[work], name=prefix)
+            model, program = board.footprint(work / (prefix + ".o")), board.footprint(elf)
+            printed = board.run_qemu(elf, check=False)
+            board.parse_selftest_output(printed)
+        except board.BoardError as exc:
+            raise BundleCheckFailed("the C bundle fails on the Cortex-M4: %s" % exc)
+        verdict = printed.strip().splitlines()[-1]
+        if not verdict.startswith("PASS"):
+            raise BundleCheckFailed("the C bundle's example fails on the Cortex-M4 (QEMU %s):\n%s" % (
+                board.MACHINE, "\n".join(ln for ln in printed.splitlines() if not ln.startswith("row "))))
+        gcc = subprocess.run([str(board.toolchain().gcc), "--version"], stdin=subprocess.DEVNULL,  # type: ignore
+                             capture_output=True, text=True).stdout.splitlines()
+    return {"measured": True, "board": C_BOARD, "compiler": gcc[0] if gcc else "arm-none-eabi-gcc",
+            "cflags": " ".join(board.CFLAGS), "model": dict(file=prefix + ".c", **model),
+            "program": dict(file=prefix + ".elf", **program), "self_test": verdict, "how": C_HOW}
+
+
+def _listed(values: List[Any], numbered: bool) -> str:
+    shown = ["%d = %s" % (i, json.dumps(v)) if numbered else json.dumps(v) for i, v in enumerate(values[:_MAX_SHOWN])]
+    return ", ".join(shown) + (", ... (%d in all)" % len(values) if len(values) > _MAX_SHOWN else "")
+
+
+def c_inputs(ensemble: Any) -> List[str]:
+    """One README line per C input x[j]: its name and what to put there."""
+    if ensemble.fields is not None:  # a pipeline: raw fields, the steps run in C
+        lines = []
+        for j, field in enumerate(ensemble.fields):
+            done = sorted({st["op"] + "d" for f in ensemble.features if f.source and f.source["field"] == field
+                           for st in f.source["steps"]})  # "imputed", "encoded"
+            lines.append("  x[%d]  %s  (a number%s)" % (j, field, "; %s in C" % " and ".join(done) if done else ""))
+        return lines
+    out = []
+    for j, f in enumerate(ensemble.features):
+        if not f.is_categorical:
+            out.append("  x[%d]  %s  (a number)" % (j, f.name))
+        elif any(isinstance(c, str) for c in f.categories):
+            out.append("  x[%d]  %s  (categorical: the category's position among its categories: %s)"
+                       % (j, f.name, _listed(list(f.categories), True)))
+        else:
+            out.append("  x[%d]  %s  (categorical: the category's value, one of %s)"
+                       % (j, f.name, _listed(list(f.categories), False)))
+    return out
+
+
+def _sizes(entry: Dict[str, int]) -> str:
+    return "flash %d bytes, RAM %d bytes (text %d, data %d, bss %d)" % (
+        entry["flash"], entry["ram"], entry["text"], entry["data"], entry["bss"])
+
+
+def c_readme_text(ensemble: Any, prefix: str, foot: Dict[str, Any], digest: str, n_raw: int, n_out: int) -> str:
+    """The README of a C bundle."""
+    from boxwood_runtime.csource import ERROR_CODES
+
+    P, up, m4 = prefix, prefix.upper(), foot["cortex_m4"]
+    n_rows = len(ensemble.reference.rows)
+    if m4["measured"]:
+        memory = ["Footprint on the Cortex-M4, measured with arm-none-eabi-size when the bundle was made",
+                  "(%s;" % m4["compiler"], " %s):" % m4["cflags"],
+                  "  the model alone (%s.c, all its functions):" % P, "      " + _sizes(m4["model"]),
+                  "  the example program (%s.elf, with newlib's printf):" % P, "      " + _sizes(m4["program"]),
+                  "The example, run then on the emulated board, printed:", "  " + m4["self_test"]]
+    else:
+        memory = ["Footprint on the Cortex-M4: %s." % m4["why"]]
+    memory += ["The stack comes on top (the model keeps a few arrays of doubles per call on it); the",
+               "model needs no heap (no malloc), no stdio and no recursion, and its tables are const",
+               "(flash). The Cortex-M4's FPU is single precision: every double operation runs in",
+               "software (the compiler's runtime library), which is slower than float and is what keeps",
+               "the results bit for bit the source model's."]
+    what = {"regression": "the predictions", "outlier_detection": "score_samples",
+            "classification": "the positive class's probability" if n_out == 1 else "class probabilities"}
+    if ensemble.post_transform == "identity":
+        raw = "predict_proba" if ensemble.task == "classification" else "predict"
+    else:
+        raw = "decision_function" if ensemble.task == "classification" else \
+            "scores before its %s output transform" % ensemble.post_transform
+    api = ["  int %s_raw(const double *x, double *raw);" % P,
+           "      %d raw score%s, bit for bit the source model's %s" % (n_raw, "" if n_raw == 1 else "s", raw),
+           "  int %s_predict(const double *x, double *out);" % P,
+           "      %d value%s: %s" % (n_out, "" if n_out == 1 else "s", what[ensemble.task])]
+    if ensemble.classes:
+        api += ["  int %s_label(const double *x, int *label);" % P,
+                "      the predicted class, an index into %s_class_labels: %s"
+                % (P, _listed(list(ensemble.classes), True))]
+    api += ["  size_t %s_score_many(size_t n, const double *x, double *raw, double *out, int *label, int *status);" % P,
+            "      n records at once (see %s.h)" % P,
+            "Every function returns one of these codes (%s.h); on an error nothing is written:" % P]
+    api += [textwrap.fill(text, 92, initial_indent="  %d %s_%s: " % (code, up, name), subsequent_indent="      ")
+            for name, code, text in ERROR_CODES]
+    return "\n".join([
+        "boxwood bundle, C target: %s model, %d inputs, %s" % (
+            ensemble.task.replace("_", " "), len(c_inputs(ensemble)),
+            ("classes " + _listed(list(ensemble.classes), False)) if ensemble.classes
+            else "outputs " + ", ".join(ensemble.output_names)),
+        "%d trees, %d nodes, deepest path %d splits; generated by boxwood %s from the artefact" % (
+            foot["trees"], foot["nodes"], foot["max_depth"], __version__),
+        digest + ".",
+        "",
+        "Files",
+        "  %s.c, %s.h  the model as portable C99 (tables and scoring code; do not edit: export again)" % (P, P),
+        "  main.c        example: scores the model's %d reference rows, prints each result's bits and" % n_rows,
+        "                compares them with what the source model computed (raw scores bit for bit,",
+        "                predictions within 8 ulps); prints PASS (exit status 0) or FAIL (1)",
+        "  startup.c, link.ld   startup code and linker script of the emulated Cortex-M4 board",
+        "  Makefile      the builds below; manifest.json: sha256 and size of every file, the footprint",
+        "",
+        "Build",
+        "  make          %s.elf for a Cortex-M4 with arm-none-eabi-gcc and newlib-nano, and its size" % P,
+        "                (Debian packages: gcc-arm-none-eabi libnewlib-arm-none-eabi)",
+        "  make host     main.c and %s.c with this computer's C compiler (cc), then runs it" % P,
+        "  make qemu     runs %s.elf on QEMU's emulated Cortex-M4 (qemu-system-arm); output via semihosting" % P,
+        "  make clean",
+        "On your own board: add %s.c and %s.h to the project with your own startup code and linker" % (P, P),
+        "script; compile as C99 without -ffast-math (the file refuses it), and run main.c's check there.",
+        "",
+        "API (%s.h)" % P,
+    ] + api + [
+        "",
+        "Inputs: x holds %s_N_FEATURES doubles in this order (%s_input_names); NaN means missing." % (up, P),
+    ] + c_inputs(ensemble) + [""] + memory + [
+        "",
+        "Cautions",
+        "- The outputs are advisory. Where they drive equipment (compressors, heaters,",
+        "  valves, alarms), keep the equipment's own protections and controls in charge.",
+        "- Where a model drives equipment that can hurt someone, the safety functions need",
+        "  their own engineering, sensors and validation under the applicable standards and",
+        "  local codes; this code is not a safety function.",
+        "- Test a retrained model on the target hardware (main.c must print PASS there) before",
+        "  it is put in service, and keep a safe fallback for when a call returns an error code.",
+        "- manifest.json detects damaged, truncated, missing or mixed-up files. It is not a",
+        "  signature: protect the files from deliberate tampering by other means.",
+        ""])
+
+
+def write_c_manifest(folder: Path, prefix: str, doc: Dict[str, Any], foot: Dict[str, Any], ensemble: Any,
+                     c_digest: str) -> Dict[str, Any]:
+    """Write ``folder``/manifest.json of a C bundle (every file now in the folder) and return it."""
+    from boxwood_runtime import SCORER_VERSION
+    from boxwood_runtime.csource import C_TARGET_VERSION
+
+    names = sorted(p.name for p in folder.iterdir() if p.is_file() and p.name != MANIFEST)
+    ref = ensemble.reference
+    manifest = {
+        "bundle_format": BUNDLE_FORMAT,
+        "bundle_format_version": BUNDLE_FORMAT_VERSION,
+        "target": "c",
+        "made_by": "boxwood %s" % __version__,
+        "scorer_version": SCORER_VERSION,
+        "entry": C_EXAMPLE,
+        "artefact": {"format": doc.get("format"), "format_version": doc.get("format_version"),
+                     "digest": doc.get("boxwood_digest")},
+        "c": {"version": C_TARGET_VERSION, "prefix": prefix, "source": prefix + ".c", "header": prefix + ".h",
+              "digest": c_digest, "inputs": list(ensemble.fields if ensemble.fields is not None
+                                                 else [f.name for f in ensemble.features]),
+              "n_outputs": len(ref.raw[0]), "n_predictions": len(ref.transformed[0]),
+              "classes": None if ensemble.classes is None else list(ensemble.classes),
+              "reference_rows": len(ref.rows)},
+        "files": {n: {"bytes": (folder / n).stat().st_size, "sha256": _sha256(folder / n)} for n in names},
+        "footprint": foot,
+    }
+    (folder / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    return manifest
+
+
+def make_c_bundle(source: Union[str, Path], out_dir: Union[str, Path], prefix: str = C_PREFIX,
+                  zip_file: bool = False, reference_rows: int = 6) -> Dict[str, Any]:
+    """Make the C bundle folder ``out_dir`` (new or empty) from ``source`` (artefact or model
+    file); with ``zip_file`` also ``<out_dir>.zip``. Returns the manifest. Raises FormatError
+    (a ValueError) when C cannot carry the model, BundleError for a bad prefix or folder, and
+    BundleCheckFailed when the written C fails its check (read back, compiled on this computer,
+    reference rows) or the example fails on the emulated Cortex-M4."""
+    import boxwood_runtime
+    from boxwood_runtime.csource import CTargetError, prefix_from
+    from boxwood_runtime.scorer import SELF_CHECK_ULPS
+
+    from .formats.c import board
+    from .formats.c import check as c_check
+    from .formats.c import writer as c_writer
+    from .formats.json.reader import from_document
+
+    out = _free_folder(out_dir)
+    try:
+        prefix = prefix_from(prefix, prefix)
+    except CTargetError as exc:
+        raise BundleError(str(exc))
+    if prefix in C_RESERVED:
+        raise BundleError("the C prefix %r would overwrite the bundle's own %s.c; choose another" % (prefix, prefix))
+    data = artefact_from(source, reference_rows=reference_rows)
+    model = boxwood_runtime.load(data)
+    ensemble = from_document(model.doc)
+    ref = ensemble.reference
+    foot: Dict[str, Any] = {"trees": model.n_trees, "nodes": model.n_nodes, "max_depth": model.max_depth}
+    work = _work_folder(out)
+    try:
+        c_path = work / (prefix + ".c")
+        c_writer.write(ensemble, c_path, c_prefix=prefix)  # FormatError (exit 2) names the feature or step
+        ok, message = c_check.check(c_path, ensemble)
+        if not ok:
+            raise BundleCheckFailed("the C file fails its check: %s" % message)
+        board.write_bundle(work, prefix, c_rows(ensemble), len(ref.raw[0]), len(ref.transformed[0]),
+                           ref.raw, ref.transformed, SELF_CHECK_ULPS)
+        foot["cortex_m4"] = c_footprint(work, prefix)
+        (work / README).write_text(c_readme_text(ensemble, prefix, foot, model.doc["boxwood_digest"],
+                                                 len(ref.raw[0]), len(ref.transformed[0])), encoding="utf-8")
+        manifest = write_c_manifest(work, prefix, model.doc, foot, ensemble, c_check.digest(c_path))
+        _publish(work, out)
+    except BaseException:
+        shutil.rmtree(work, ignore_errors=True)
+        raise
+    if zip_file:
+        write_zip(out)
+    return manifest

@@ -371,18 +371,32 @@ def _check_prefix(prefix: str) -> None:
         raise ValueError("not a C identifier prefix: %r" % (prefix,))
 
 
-def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int, n_predictions: int) -> str:
+def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int, n_predictions: int,
+                    expected_raw: Optional[Sequence[Sequence[float]]] = None,
+                    expected_out: Optional[Sequence[Sequence[float]]] = None, out_ulps: int = 8) -> str:
     """A main.c that runs ``prefix``_raw and ``prefix``_predict on each row and prints, per row,
     ``row <i> rc <code> raw <bits>... out <bits>...`` (each value's IEEE 754 bits as 16 hex
     digits) and finally ``done <n>``. ``code`` is P_raw's code, or P_predict's when P_raw
     returned 0. Both buffers are zeroed before each call. The program is plain C99 (stdio,
     no board code), so it runs natively too. Compile-time checks make it fail to build when
     P.h's sizes disagree with what is given here: P_N_FEATURES, P_N_OUTPUTS and
-    P_N_PREDICTIONS, with P upper-cased (as the generator writes them) or as given."""
+    P_N_PREDICTIONS, with P upper-cased (as the generator writes them) or as given.
+
+    With ``expected_raw`` (one list of n_outputs values per row) the program also checks
+    itself on the device: every row must return 0 and give the expected raw values bit for
+    bit, and, with ``expected_out``, predictions within ``out_ulps`` units in the last place.
+    A row that differs is followed by ``mismatch row <i>: ...``; after ``done`` comes
+    ``PASS: ...`` (status 0) or ``FAIL: ...`` (status 1, which make and QEMU pass on)."""
     _check_prefix(prefix)
     rows = [list(r) for r in rows]
     if n_outputs < 1 or n_predictions < 1:
         raise ValueError("n_outputs and n_predictions must be at least 1")
+    for name, table, width in (("expected_raw", expected_raw, n_outputs),
+                               ("expected_out", expected_out, n_predictions)):
+        if table is not None and (len(table) != len(rows) or any(len(t) != width for t in table)):
+            raise ValueError("%s must hold %d values for each of the %d rows" % (name, width, len(rows)))
+    if expected_out is not None and expected_raw is None:
+        raise ValueError("expected_out needs expected_raw")
     widths = {len(r) for r in rows}
     if len(widths) > 1:
         raise ValueError("rows differ in length: %s" % sorted(widths))
@@ -436,9 +450,12 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
         "    }",
         "}",
         "",
-        "int main(void)",
-        "{",
-        "    unsigned long i;",
+    ]
+    checking = expected_raw is not None
+    if checking:
+        lines += _expectations_c(expected_raw, expected_out, len(rows), out_ulps)
+    lines += ["int main(void)", "{", "    unsigned long i;"] + (
+        ["    unsigned long failed = 0;"] if checking else []) + [
         "    for (i = 0; i < n_rows; i++) {",
         "        double raw[BOXWOOD_N_OUTPUTS], out[BOXWOOD_N_PREDICTIONS];",
         "        int rc, prc;",
@@ -451,13 +468,75 @@ def selftest_main_c(prefix: str, rows: Sequence[Sequence[float]], n_outputs: int
         '        printf(" out");',
         "        print_bits(out, BOXWOOD_N_PREDICTIONS);",
         '        printf("\\n");',
+    ] + (["        failed += check_row(i, rc != 0 ? rc : prc, raw, out);"] if checking else []) + [
         "    }",
         '    printf("done %lu\\n", i);',
-        "    return 0;",
-        "}",
-        "",
-    ]
+    ] + ([
+        "    if (failed != 0) {",
+        '        printf("FAIL: %lu of %lu reference rows differ\\n", failed, n_rows);',
+        "        return 1;",
+        "    }",
+        '    printf("PASS: %%lu reference rows, raw values bit for bit%s\\n", n_rows);'
+        % (", predictions within %d ulps" % out_ulps if expected_out is not None else ""),
+    ] if checking else []) + ["    return 0;", "}", ""]
     return "\n".join(lines)
+
+
+def _expectations_c(expected_raw: Sequence[Sequence[float]], expected_out: Optional[Sequence[Sequence[float]]],
+                    n_rows: int, out_ulps: int) -> List[str]:
+    """The expected values (IEEE 754 bits) and check_row() of a checking self-test main.c."""
+    def table(name: str, width: str, values: Sequence[Sequence[float]]) -> List[str]:
+        out = ["static const uint64_t %s[%d][%s] = {" % (name, max(n_rows, 1), width)]
+        out += ["    {%s}," % ", ".join("UINT64_C(0x%016x)" % struct.unpack("<Q", struct.pack("<d", float(v)))[0]
+                                      for v in r) for r in values]
+        return out + (["    {0},  /* placeholder: there are no rows */"] if not values else []) + ["};", ""]
+
+    lines = ["/* What the source model computed for these rows (IEEE 754 bits). */"]
+    lines += table("expected_raw", "BOXWOOD_N_OUTPUTS", expected_raw)
+    if expected_out is not None:
+        lines += table("expected_out", "BOXWOOD_N_PREDICTIONS", expected_out) + [
+            "/* A double's bits as an integer in value order (-0 and +0 alike): ulps are differences. */",
+            "static uint64_t ordered(uint64_t u)",
+            "{",
+            "    return (u >> 63) ? UINT64_C(0x8000000000000000) - (u & UINT64_C(0x7fffffffffffffff))",
+            "                     : u + UINT64_C(0x8000000000000000);",
+            "}",
+            ""]
+    lines += [
+        "/* 1 (and a mismatch line) when row i differs from the reference, else 0. */",
+        "static int check_row(unsigned long i, int rc, const double *raw, const double *out)",
+        "{",
+        "    int k;",
+        "    uint64_t u;",
+        "    if (rc != 0) {",
+        '        printf("mismatch row %lu: error code %d\\n", i, rc);',
+        "        return 1;",
+        "    }",
+        "    for (k = 0; k < BOXWOOD_N_OUTPUTS; k++) {",
+        "        memcpy(&u, &raw[k], sizeof u);",
+        "        if (u != expected_raw[i][k]) {",
+        '            printf("mismatch row %lu: raw %d differs\\n", i, k);',
+        "            return 1;",
+        "        }",
+        "    }",
+    ]
+    if expected_out is not None:
+        lines += [
+            "    for (k = 0; k < BOXWOOD_N_PREDICTIONS; k++) {",
+            "        uint64_t a, b = ordered(expected_out[i][k]);",
+            "        memcpy(&u, &out[k], sizeof u);",
+            "        a = ordered(u);",
+            "        /* a NaN (its exponent all ones, fraction not zero) matches only the same bits */",
+            "        if ((a > b ? a - b : b - a) > %d || (u != expected_out[i][k] && ((u << 1) > "
+            "UINT64_C(0xffe0000000000000) || (expected_out[i][k] << 1) > UINT64_C(0xffe0000000000000)))) {" % out_ulps,
+            '            printf("mismatch row %%lu: prediction %%d is more than %d ulps off\\n", i, k);' % out_ulps,
+            "            return 1;",
+            "        }",
+            "    }",
+        ]
+    else:
+        lines.append("    (void)out;")
+    return lines + ["    return 0;", "}", ""]
 
 
 _ROW = re.compile(r"row (\d+) rc (-?\d+) raw((?: [0-9a-f]{16})*) out((?: [0-9a-f]{16})*)\Z")
@@ -559,7 +638,8 @@ def makefile(prefix: str) -> str:
         "",
         "ELF = $(PREFIX).elf",
         "HOST = $(PREFIX)-host",
-        "OBJS = $(PREFIX).arm.o main.arm.o startup.arm.o",
+        "# Linked in build_elf's order (startup first), so the sizes are the ones it measures.",
+        "OBJS = startup.arm.o $(PREFIX).arm.o main.arm.o",
         "",
         ".PHONY: all host qemu clean",
         "",
@@ -594,13 +674,16 @@ def makefile(prefix: str) -> str:
 
 
 def write_bundle(folder: PathLike, prefix: str, rows: Sequence[Sequence[float]], n_outputs: int,
-                 n_predictions: int) -> List[Path]:
-    """Write main.c (the self-test of ``rows``), startup.c, link.ld and the Makefile into
+                 n_predictions: int, expected_raw: Optional[Sequence[Sequence[float]]] = None,
+                 expected_out: Optional[Sequence[Sequence[float]]] = None, out_ulps: int = 8) -> List[Path]:
+    """Write main.c (the self-test of ``rows``; with ``expected_raw`` it checks itself and prints
+    PASS or FAIL, see :func:`selftest_main_c`), startup.c, link.ld and the Makefile into
     ``folder``, next to the generator's P.c and P.h; returns the paths written."""
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     main = folder / "main.c"
-    main.write_text(selftest_main_c(prefix, rows, n_outputs, n_predictions), encoding="utf-8")
+    main.write_text(selftest_main_c(prefix, rows, n_outputs, n_predictions, expected_raw, expected_out, out_ulps),
+                    encoding="utf-8")
     make = folder / "Makefile"
     make.write_text(makefile(prefix), encoding="utf-8")
     return [main, *write_board_files(folder), make]
