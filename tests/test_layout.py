@@ -25,7 +25,7 @@ MAX_LINES = 700
 
 # Layers, lowest first; a module belongs to the first prefix that matches it.
 LAYERS = [
-    ("boxwood", "boxwood.ir", "boxwood.numerics", "boxwood.schema"),
+    ("boxwood", "boxwood.ir", "boxwood.numerics", "boxwood.schema", "boxwood.pages"),
     ("boxwood.contract", "boxwood.reference_rows"),
     ("boxwood.sources", "boxwood.formats", "boxwood.micropython"),
     ("boxwood.export", "boxwood.verify"),
