@@ -330,7 +330,7 @@ def verify_digest(doc):
 
 
 # ----------------------------------------------------------------------------- loading
-def load(source, limits=None, unknown_category="error", self_check=True):
+def load(source, limits=None, unknown_category="error", self_check=True, compiled=False):
     """Load an artefact and return a :class:`Model`.
 
     ``source`` is a file path, the file's bytes, or the already parsed dict.
@@ -339,7 +339,10 @@ def load(source, limits=None, unknown_category="error", self_check=True):
     it as the source model does: scikit-learn treats unseen categories as missing).
     ``self_check`` scores the artefact's embedded reference rows and refuses the
     model unless raw scores match exactly and transformed outputs within
-    SELF_CHECK_ULPS units in the last place.
+    SELF_CHECK_ULPS units in the last place. ``compiled`` walks the trees with Python code
+    generated from the validated trees and compiled once (:meth:`Model.compile`; where the
+    platform cannot, the model keeps walking the data and ``compiled_reason`` says why); the
+    self-check then runs on the compiled walk.
     """
     check_platform()
     lim = dict(DEFAULT_LIMITS)
@@ -358,6 +361,8 @@ def load(source, limits=None, unknown_category="error", self_check=True):
             raise ArtefactError("the artefact is larger than max_bytes=%d" % lim["max_bytes"])
         doc = _verify_file_bytes(data)
     model = Model(doc, lim, unknown_category)
+    if compiled:
+        model.compile()
     if self_check:
         ok, message = model.self_check()
         if not ok:
@@ -951,6 +956,93 @@ class Model:
     # -- scoring -----------------------------------------------------------------
     def raw_scores(self, x):
         """Raw scores (one float per output) for a prepared record ``x``."""
+        if self._compiled is not None:
+            return self._compiled(x)
+        return self._walk(x)
+
+    # -- compiled mode -------------------------------------------------------------
+    _compiled = None
+    compiled_reason = "not asked for (load(..., compiled=True))"
+    COMPILE_NESTING = 24  # deeper subtrees are walked as data (parsers limit nested blocks)
+
+    def compile(self):
+        """Generate Python source for the tree walk from the validated trees and compile it
+        once; return True, or False when the platform cannot (``compiled_reason`` says why;
+        the model keeps walking the data). Only integers (feature indexes, category codes)
+        and ``repr`` of floats reach the source, never a string from the file, and each
+        float's repr is checked to read back to the same bits first. The generated walk adds
+        the same leaves in the same order as :meth:`raw_scores`' data walk."""
+        consts = []
+        try:
+            source = self._source(consts)
+        except ValueError as exc:
+            self.compiled_reason = str(exc)
+            return False
+        try:
+            code = compile(source, "<boxwood compiled model>", "exec")
+            space = {"_walk_tree": _walk_tree, "_NAN": _NAN}
+            exec(code, space)
+        except NameError:  # MicroPython built without compile()/exec()
+            self.compiled_reason = "this Python has no compile()/exec(); walking the data"
+            return False
+        except (SyntaxError, MemoryError, RuntimeError) as exc:
+            self.compiled_reason = "the generated code did not compile here (%s); walking the data" % (
+                type(exc).__name__,)
+            return False
+        self._deep = tuple(consts)
+        space["_DEEP"] = self._deep
+        self._compiled = space["raw"]
+        self.compiled_reason = "compiled (%d lines)" % source.count("\n")
+        return True
+
+    def _source(self, deep):
+        n = self.n_features
+        names = ["x%d" % j for j in range(n)]
+        lines = ["def raw(x):", "    %s = x" % (names[0] + "," if n == 1 else ", ".join(names))]
+        mean = self.combine == "mean"
+        for k, (total, roots) in enumerate(self._plan):
+            acc = "a%d" % k
+            lines.append("    %s = %s" % (acc, "0.0" if mean else _literal(total)))
+            for root in roots:
+                self._emit(root, acc, 1, lines, deep)
+            if mean:
+                lines.append("    %s = %s" % (acc, (_literal(total) + " + %s / %d" % (acc, len(roots))) if roots
+                                              else _literal(total)))
+        lines.append("    return [%s]" % ", ".join("a%d" % k for k in range(len(self._plan))))
+        return "\n".join(lines) + "\n"
+
+    def _emit(self, node, acc, depth, lines, deep):
+        pad = "    " * depth
+        if node.__class__ is not tuple:
+            lines.append("%s%s += %s" % (pad, acc, _literal(node)))
+            return
+        if depth > self.COMPILE_NESTING:  # a deep subtree: walked as data
+            lines.append("%s%s += _walk_tree(_DEEP[%d], x)" % (pad, acc, len(deep)))
+            deep.append(node)
+            return
+        f, t, lo, hi, m = node
+        v = "x%d" % f
+        if m is True:  # missing goes left: right only when v > t (NaN fails it)
+            lines.append("%sif %s > %s:" % (pad, v, _literal(t)))
+            first, second = hi, lo
+        elif m is False:
+            lines.append("%sif %s <= %s:" % (pad, v, _literal(t)))
+            first, second = lo, hi
+        else:  # categorical: NaN takes the missing direction, a code goes left when in the set
+            codes = sorted(m[1])
+            inside = "(%s)" % "".join("%d," % c for c in codes)
+            if m[0]:  # missing left: right only for a number outside the set
+                lines.append("%sif %s == %s and %s not in %s:" % (pad, v, v, v, inside))
+                first, second = hi, lo
+            else:  # missing right: left only for a number inside the set
+                lines.append("%sif %s == %s and %s in %s:" % (pad, v, v, v, inside))
+                first, second = lo, hi
+        self._emit(first, acc, depth + 1, lines, deep)
+        lines.append("%selse:" % pad)
+        self._emit(second, acc, depth + 1, lines, deep)
+
+    def _walk(self, x):
+        """The data walk: the trees' nested tuples, node by node."""
         out = []
         for total, roots in self._plan:
             acc = 0.0 if self.combine == "mean" else total
@@ -1139,6 +1231,40 @@ class Model:
 
 
 # ----------------------------------------------------------------------------- math
+def _literal(v):
+    """A float as Python source that reads back to the same bits (repr; infinities as 1e999),
+    or ValueError where this platform's repr does not round-trip (MicroPython may not)."""
+    if v != v:
+        raise ValueError("a NaN constant cannot be compiled")
+    if v == _INF or v == -_INF:
+        return "1e999" if v > 0 else "-1e999"
+    text = repr(float(v))
+    back = float(text)
+    if back != v or (v == 0.0 and str(back) != str(v)):
+        raise ValueError("this Python's float repr does not read back exactly (%s); walking the data" % text)
+    return "(%s)" % text if text[0] == "-" else text
+
+
+def _walk_tree(node, x):
+    """One tree's leaf for a prepared record, walking its nested tuples (the data walk)."""
+    while node.__class__ is tuple:
+        f, t, lo, hi, m = node
+        v = x[f]
+        if v <= t:
+            node = lo
+        elif v > t:
+            node = hi
+        elif m is True:
+            node = lo
+        elif m is False:
+            node = hi
+        elif v != v:
+            node = lo if m[0] else hi
+        else:
+            node = lo if v in m[1] else hi
+    return node
+
+
 def _exp(v):
     try:
         return math.exp(v)

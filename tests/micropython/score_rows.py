@@ -3,7 +3,8 @@
 # Run unchanged by CPython and by MicroPython (tests/test_micropython.py) so that the
 # two outputs can be compared line by line. The caller defines BOX (the folder holding
 # scorer.py, model.json and rows.json) before this text, and optionally EXACT (force
-# the scorer's exact float parser on or off).
+# the scorer's exact float parser on or off) and COMPILED (load(..., compiled=True); then a
+# line "compiled <reason>" follows "platform").
 #
 # rows.json is a list of rows in feature order; a float travels as the string
 # "\x00" + 16 hex digits of its IEEE bits, so that no float parser is involved.
@@ -42,10 +43,16 @@ def decode(v):
 scorer.check_platform()
 print("platform %d" % (1 if scorer._parser_ok else 0))  # the probe's verdict on this Python's parser
 try:
-    model = scorer.load(BOX + "/model.json", unknown_category="as_missing")  # noqa: F821
+    COMPILED  # noqa: F821 (optionally defined by the caller: walk with compiled code)
+except NameError:
+    COMPILED = False
+try:
+    model = scorer.load(BOX + "/model.json", unknown_category="as_missing", compiled=COMPILED)  # noqa: F821
 except scorer.ArtefactError as exc:
     print("refused %s" % (exc,))
     raise SystemExit(0)
+if COMPILED:
+    print("compiled %s" % model.compiled_reason)
 for trees in model.trees_per_output:
     for root in trees:
         found = []
