@@ -219,14 +219,17 @@ def ulps_figure(plt: Any, a: ArtefactReport) -> Any:
         width = 0.8 / max(n_ev, 1)
         top = 0
         for k, e in enumerate(a.evaluators):
-            vals = [int(m.get("max_ulp") or 0) for m in e.empirical.get(kind, [])]
+            vals = [float(m.get("max_ulp") or 0) for m in e.empirical.get(kind, [])]
             xs = [i - 0.4 + width * (k + 0.5) for i in range(len(vals))]
             ax.bar(xs, vals, width=width, color=_colour(k), label=e.name)
             for x, v in zip(xs, vals):
-                ax.text(x, v, str(v), ha="center", va="bottom", fontsize=7)
+                ax.text(x, v, "%.3g" % v, ha="center", va="bottom", fontsize=7)
             top = max([top] + vals)
         ax.set_yscale("symlog", linthresh=1)
         ax.set_ylim(0, max(10, top * 4))
+        decades = int(math.ceil(math.log10(max(10, top * 4))))
+        step = max(1, int(math.ceil(decades / 6)))
+        ax.set_yticks([0] + [10.0 ** d for d in range(0, decades + 1, step)])
         ax.set_xlim(-0.6, max(len(names), 1) - 0.4)
         ax.set_xticks(range(len(names)))
         ax.set_xticklabels([_short(n) for n in names], rotation=45 if len(names) > 6 else 0, fontsize=8)
