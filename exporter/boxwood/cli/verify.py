@@ -33,6 +33,10 @@ def add(commands):
                         "|a - s| <= max(A, R |s|)")
     p.add_argument("--report-json", metavar="F", help="write the JSON report (schemas/verify-report.schema.json)")
     p.add_argument("--junit", metavar="F", help="write JUnit XML (one test case per check and evaluator)")
+    p.add_argument("--report-html", metavar="F",
+                   help="write one self-contained HTML page: the verdict, the checks and plots (ulps, probe coverage, "
+                        "decision flips, certified bound against observed difference, memory against board sizes); "
+                        "needs matplotlib: pip install \"boxwood[report]\" (docs/reports.md)")
     p.add_argument("--probes", type=int, default=DEFAULT_PROBE_ROWS, metavar="N",
                    help="most generated probe rows, 0 for none (default: %(default)s)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the random rows (default: 0)")
@@ -54,14 +58,30 @@ def _write_reports(args, result):
         result.write_json(args.report_json)
     if args.junit:
         result.write_junit(args.junit)
+    if args.report_html:
+        from ..verify.html import verify_page
+
+        verify_page(result).write(args.report_html)
 
 
 def run(args):
-    """Verify; the JSON and JUnit reports are written whenever asked, also when the run
-    stops on bad input (exit 2: every artefact is then a failing case with the reason)."""
+    """Verify; the JSON, JUnit and HTML reports are written whenever asked, also when the run
+    stops on bad input (exit 2: every artefact is then a failing case with the reason). A
+    missing matplotlib with --report-html is bad usage (exit 2, the JSON and JUnit reports say so)."""
     from ..verify import VerifyResult, verify
 
     settings = {"probes": args.probes, "seed": args.seed, "data": args.data}
+    if args.report_html:
+        from .. import pages
+
+        try:  # before the run: a missing matplotlib is bad usage (exit 2), told with the install hint
+            pages.pyplot()
+        except pages.MissingPlotting as exc:
+            message = str(exc)
+            args.report_html = None
+            _write_reports(args, VerifyResult.bad_input(os.path.basename(args.model), args.model, args.artefacts,
+                                                        message, settings))
+            raise UsageError(message)
     try:
         problem = (_found(args.model, "model file")
                    or (None if args.data is None else _found(args.data, "data file"))

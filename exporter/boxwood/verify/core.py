@@ -200,8 +200,10 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
         # A pipeline: records hold raw fields. Probes are made in feature space (no data
         # rows as bases) and mapped back to fields through the encoders.
         made = probes_mod.generate(source, sides, [], budget=probes, seed=seed)
-        for r, kind, origin in zip(probes_mod.to_field_rows(made.rows, source), made.kinds, made.origins):
-            rows.add(r, kind, origin)
+        for r, kind, origin, target in zip(probes_mod.to_field_rows(made.rows, source), made.kinds, made.origins,
+                                           made.targets):
+            rows.add(r, kind, origin, target=target)
+        rows.probed_nodes |= made.probed_nodes
         notes.append("the model carries preprocessing: probes are made for the features and mapped back to the "
                      "raw fields (an encoded feature takes the category nearest to the probe's code)")
     else:
@@ -253,12 +255,31 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
                   (None if data is None else type(data).__name__)},
         notes=notes,
     )
+    result.coverage = _coverage(source, rows)
     if bad_input:
         result.error = {"message": "; ".join(bad_input), "exit_code": 2}
     result.seconds = time.perf_counter() - t0
     return result
 
-
+def _coverage(source: Ensemble, rows: Any) -> Dict[str, Any]:
+    """Per feature of the source: the rows that target it by kind (specials, split probes),
+    its splits in the source and how many of them a probe row was built to reach (for the
+    HTML report; not part of the JSON report)."""
+    names = [f.name for f in source.features]
+    n = len(names)
+    per_kind = {k: [0] * n for k in ("special", "split")}
+    for kind, target in zip(rows.kinds, rows.targets):
+        if target is not None and kind in per_kind and 0 <= target < n:
+            per_kind[kind][target] += 1
+    splits, probed = [0] * n, [0] * n
+    for ti, t in enumerate(source.trees):
+        for node in range(t.n_nodes):
+            f = t.feature[node]
+            if 0 <= f < n:
+                splits[f] += 1
+                if ("source", ti, node) in rows.probed_nodes:
+                    probed[f] += 1
+    return {"features": names, "rows": per_kind, "splits": splits, "splits_probed": probed}
 
 
 def assert_equivalent(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike]], data: Any = None,

@@ -53,13 +53,17 @@ class Rows:
         # a data file is read by pandas for the source and by the box's reader for artefacts.
         self.source_rows: Dict[int, List[Any]] = {}
         self.reading: Optional["Reading"] = None
+        # For the HTML report's coverage plot: the feature each row targets (None: data or
+        # random rows), and the (side label, tree, node) splits a probe row was built to reach.
+        self.targets: List[Optional[int]] = []
+        self.probed_nodes: set = set()
 
     def for_source(self) -> List[List[Any]]:
         """The rows as the source model reads them (the artefacts' rows, except where the
         workstation's reading of a data file differs)."""
         return [self.source_rows.get(i, r) for i, r in enumerate(self.rows)]
 
-    def add(self, row: List[Any], kind: str, origin: str, dedupe: bool = True) -> bool:
+    def add(self, row: List[Any], kind: str, origin: str, dedupe: bool = True, target: Optional[int] = None) -> bool:
         if dedupe:
             key = tuple(_key(v) for v in row)
             if key in self._seen:
@@ -68,6 +72,7 @@ class Rows:
         self.rows.append(row)
         self.kinds.append(kind)
         self.origins.append(origin)
+        self.targets.append(target)
         return True
 
     def __len__(self) -> int:
@@ -469,7 +474,7 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
             return out
         row = base_row(n)
         row[j] = v
-        out.add(row, "special", "%s in %r" % (what, names[j]))
+        out.add(row, "special", "%s in %r" % (what, names[j]), target=j)
 
     # 2. split probes: distinct boundaries first, then the other nodes
     first, rest, seen_b = [], [], set()
@@ -502,6 +507,7 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
         if row is None:
             continue
         f = t.feature[node]
+        out.probed_nodes.add((label, ti, node))
         where = "%s tree %d node %d, %r" % (label, ti, node, names[f])
         if t.left_categories[node] is None:
             d = plan.domain[f]
@@ -510,17 +516,17 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
                 if d.contains(v) and (lo is None or v > lo) and v <= hi:
                     r = list(row)
                     r[f] = v
-                    out.add(r, "split", "%s = %r (%s, t = %r)" % (where, v, what, t.threshold[node]))
+                    out.add(r, "split", "%s = %r (%s, t = %r)" % (where, v, what, t.threshold[node]), target=f)
         else:
             allowed = cons.get(f, set(plan.categories(f)))
             for c in [c for c in plan.categories(f) if c in allowed][:16] + plan.unseen(f)[:1]:
                 r = list(row)
                 r[f] = c
-                out.add(r, "split", "%s = %r" % (where, c))
+                out.add(r, "split", "%s = %r" % (where, c), target=f)
         if plan.routes:
             r = list(row)
             r[f] = None
-            out.add(r, "split", "%s = missing" % where)
+            out.add(r, "split", "%s = missing" % where, target=f)
 
     # 3. random rows in the observed ranges (an eighth of the budget, or what is left)
     limit = min(limit, len(out) + max(budget // 8, 16))

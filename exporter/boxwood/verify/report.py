@@ -96,6 +96,9 @@ class VerifyResult:
     # message and the exit code the command line returns (2). The report still lists every
     # artefact, a bad one as a failing check with its reason.
     error: Optional[Dict[str, Any]] = None
+    # Probe coverage per feature (core._coverage), for the HTML report only (not in the JSON
+    # report); None when no rows were made (a run that stopped on bad input).
+    coverage: Optional[Dict[str, Any]] = None
 
     @classmethod
     def bad_input(cls, model_label: str, model_path: Optional[str], artefact_paths: List[str], message: str,
