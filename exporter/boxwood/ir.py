@@ -297,3 +297,13 @@ def _check_tree(tree: Tree, index: int, features: List[Feature], n_outputs: int)
             stack.append(child)
     if not all(seen):
         raise ModelError("%s: node %d is unreachable" % (where, seen.index(False)))
+
+
+def split_counts(ensemble: Ensemble) -> List[int]:
+    """How many split nodes use each feature, across all trees (index = feature index)."""
+    counts = [0] * len(ensemble.features)
+    for tree in ensemble.trees:
+        for f in tree.feature:
+            if f != LEAF and 0 <= f < len(counts):
+                counts[f] += 1
+    return counts

@@ -7,6 +7,7 @@
     boxwood inspect model.json [--json] [--micropython]
     boxwood bundle MODEL.joblib|model.json -o DIR [--zip]   # one folder to copy onto a box
     boxwood verify MODEL.joblib model.json [--data FILE] [--report-json F] [--junit F]
+    boxwood diff OLD NEW [--data FILE] [--json F] [--report-html F]
     boxwood demo [--out DIR] [--rows N]
 
 ``export`` loads a joblib or pickle file. Loading a pickle runs code stored in it:
@@ -31,12 +32,12 @@ import os
 import sys
 
 from .. import __version__
-from . import bundle, demo, export, inspect, score, verify
+from . import bundle, demo, diff, export, inspect, score, verify
 from .common import PROG, CheckFailed, UsageError, error
 
 __all__ = ["main", "build_parser", "COMMANDS", "CheckFailed", "UsageError"]
 
-COMMANDS = (export, score, inspect, bundle, verify, demo)
+COMMANDS = (export, score, inspect, bundle, verify, diff, demo)
 
 
 def build_parser():

@@ -14,7 +14,7 @@ def add(commands):
     p = commands.add_parser(
         "inspect", help="describe an artefact and run its self-check",
         description="Describe an artefact (task, features, outputs, size of the ensemble, digest, "
-                    "provenance), the input fields a record carries (kind, preprocessing steps), and run "
+                    "provenance), per-feature split counts, the input fields a record carries (kind, preprocessing steps), and run "
                     "its self-check. Exit 0 ok; 1 the self-check fails or a boxwood artefact is damaged; "
                     "2 bad usage, or a file that is not an artefact (or onnxruntime missing for an ONNX "
                     "file). An ONNX file (.onnx) is read with boxwood's ONNX reader and run with "
@@ -97,11 +97,26 @@ def run(args):
         info = formats.by_name(kind).needs("describe")(args.artefact)
     else:
         refuse_kind(args.artefact, kind, TAKES)
+    info["split_counts"] = _split_counts(args.artefact, kind, model if kind in ("json-artefact", "json") else None)
     if args.json:
         print(json.dumps(info, indent=2))
     else:
         _print_table(info)
     return 0 if info["self_check"]["ok"] else 1
+
+
+def _split_counts(path, kind, model=None):
+    """{feature name: split nodes testing it, across all trees}, from the file read into the hub
+    (a JSON artefact from the document the device loader verified; other formats by their reader)."""
+    from ..ir import split_counts
+
+    if model is not None:
+        from ..formats.json.reader import from_document
+
+        ensemble = from_document(model.doc)
+    else:
+        ensemble = formats.by_name(kind).needs("read")(Path(path))
+    return dict(zip((f.name for f in ensemble.features), split_counts(ensemble)))
 
 
 def _print_table(info, shown=40):
@@ -138,6 +153,12 @@ def _print_table(info, shown=40):
         print("  %-30s %s" % (f["name"], kind))
     if len(info["features"]) > shown:
         print("  ... and %d more (see --json)" % (len(info["features"]) - shown))
+    counts = info.get("split_counts") or {}
+    print("splits per feature (split nodes testing it, all trees; most first):")
+    for name, n in sorted(counts.items(), key=lambda kv: -kv[1])[:shown]:
+        print("  %-30s %d" % (name, n))
+    if len(counts) > shown:
+        print("  ... and %d more (see --json)" % (len(counts) - shown))
     inputs = info.get("inputs") or []
     print("input fields (what a record carries%s):" % (", as the trees' features" if not any(
         i["steps"] for i in inputs) else "; steps to the trees' features"))
