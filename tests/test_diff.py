@@ -239,3 +239,16 @@ def test_inspect_split_counts_equal_scikit_learns_trees(name, capsys, tmp_path):
     code, out, _ = run(["inspect", tmp_path / "m.json"], capsys)
     top = max(expected, key=expected.get)
     assert re.search(r"^  %s\s+%d$" % (top, expected[top]), out, re.M)
+
+
+def test_diff_page_renders_in_headless_chromium(files, capsys, tmp_path):
+    """The diff page drawn by a real browser is not blank (the check itself is shown to reject
+    an empty page in tests/test_report_html.py)."""
+    from test_report_html import blank_reason, require_chromium, screenshot
+
+    binary = require_chromium()
+    tmp, _, _, _ = files
+    code, _, _ = run(["diff", tmp / "m.json", tmp / "other.joblib", "--report-html", tmp_path / "d.html"], capsys)
+    assert code == 1
+    png = screenshot(binary, tmp_path / "d.html", tmp_path / "d.png", tmp_path / "profile")
+    assert blank_reason(png) is None, blank_reason(png)
