@@ -25,7 +25,7 @@ from ..formats.json.device import device_model
 from ..formats.json.evaluators import DeviceEvaluator
 from ..ir import Ensemble, split_counts
 from ..verify import probes
-from .structure import output_name, same_bits
+from .structure import output_name
 
 BLOCK_ROWS = 1024
 MOST_CHANGED = 20
