@@ -7,7 +7,7 @@ from .. import formats
 from .common import (ARTEFACT_TAKES, CheckFailed, UsageError, existing_file, footprint_text, load_artefact,
                      refuse_kind)
 
-TAKES = "a boxwood JSON artefact (.json) or an ONNX tree-ensemble file (.onnx)"
+TAKES = "a boxwood JSON artefact (.json), an ONNX tree-ensemble file (.onnx) or a boxwood C file (.c)"
 
 
 def add(commands):
