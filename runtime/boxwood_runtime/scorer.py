@@ -24,6 +24,13 @@ import json
 import math
 import struct
 
+try:  # CPython: a loaded model keeps its trees' node arrays as packed arrays (memory)
+    from array import array as _array
+    _NODE_ARRAYS = (list, _array)
+except ImportError:  # MicroPython ports built without array: plain lists
+    _array = None
+    _NODE_ARRAYS = (list,)
+
 FORMAT_NAME = "boxwood.tree-ensemble"
 FORMAT_VERSIONS = (1, 2)  # 1: text trimmed, None = NaN; 2: text read as pandas does
 SCORER_VERSION = "0.1.0"
@@ -262,7 +269,7 @@ def canonical_bytes(body):
     ``{"boxwood_digest":"sha256:<hex>",`` followed by these bytes minus their ``{``.
     """
     return json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True,
-                      allow_nan=False).encode("ascii")
+                      allow_nan=False, default=_json_default).encode("ascii")
 
 
 def artefact_bytes(body):
@@ -273,7 +280,12 @@ def artefact_bytes(body):
 
 
 def _verify_file_bytes(data):
-    """Check the digest of a file in the canonical layout; return the parsed document."""
+    """Check the digest of a file in the canonical layout; return the parsed document.
+    ``data`` is the file's bytes, or a one-item list holding them: the list is emptied once
+    the bytes are hashed and decoded, so a big file's bytes and its parse are not held at
+    once (the caller must keep no other reference)."""
+    holder = data if isinstance(data, list) else [data]
+    data = holder[0]
     end = len(data)
     while end and data[end - 1] in (10, 13):  # the final newline is not hashed
         end -= 1
@@ -285,6 +297,9 @@ def _verify_file_bytes(data):
         if actual != stated:
             raise ArtefactError("digest mismatch: the file says sha256 %s but its content hashes to %s; "
                                 "the file was changed or damaged after export" % (stated, actual))
+        if check_platform():  # json.loads reads text: decode, then let the bytes go
+            data = data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data
+            holder[0] = None
         doc = _parse_json(data)
         if doc.get(DIGEST_KEY) != "sha256:" + stated:
             raise ArtefactError("the digest field is repeated or altered")
@@ -295,11 +310,46 @@ def _verify_file_bytes(data):
     return doc
 
 
+def _compact_tree(obj):
+    """json object_hook: a tree's integer and float node arrays as packed ``array`` objects
+    (4 or 8 bytes a node instead of a list slot plus an int or float object: the parsed
+    document of a big forest stays near the file's size). Only a list whose every entry has
+    exactly the expected type is packed; anything else stays a list, for the loader's checks
+    to report. ``missing_left`` stays a list of booleans."""
+    if "feature" in obj and "missing_left" in obj and "value" in obj and "output" in obj:
+        for key, code, kind in _PACKED:
+            seq = obj.get(key)
+            if seq.__class__ is list and all(v.__class__ is kind for v in seq):
+                try:
+                    obj[key] = _array(code, seq)
+                except OverflowError:  # an index beyond a C int: keep the list
+                    pass
+    return obj
+
+
+_PACKED = (("feature", "i", int), ("left", "i", int), ("right", "i", int),
+           ("threshold", "d", float), ("value", "d", float))
+
+
+def _json_default(obj):
+    if _array is not None and isinstance(obj, _array):
+        return obj.tolist()  # packed node arrays (see _compact_tree) are written as lists
+    raise TypeError("%r is not JSON serialisable" % (obj,))
+
+
 def _parse_json(data):
     trusted = check_platform()
     try:
         if trusted:
-            doc = json.loads(data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data)
+            if isinstance(data, (bytes, bytearray)):
+                data = data.decode("utf-8")
+            if _array is None:
+                doc = json.loads(data)
+            else:
+                try:
+                    doc = json.loads(data, object_hook=_compact_tree)
+                except TypeError:  # MicroPython's json.loads takes no object_hook
+                    doc = json.loads(data)
         else:  # this Python's float parser is not correctly rounded (MicroPython 1.23)
             doc = _json_exact(data)
     except (ValueError, UnicodeError, IndexError) as exc:
@@ -359,7 +409,9 @@ def load(source, limits=None, unknown_category="error", self_check=True, compile
                 data = _read_bounded(fh, lim["max_bytes"])
         if len(data) > lim["max_bytes"]:
             raise ArtefactError("the artefact is larger than max_bytes=%d" % lim["max_bytes"])
-        doc = _verify_file_bytes(data)
+        holder = [data]
+        data = None  # _verify_file_bytes drops the bytes once they are hashed and decoded
+        doc = _verify_file_bytes(holder)
     model = Model(doc, lim, unknown_category)
     if compiled:
         model.compile()
@@ -707,61 +759,82 @@ class Model:
         comparisons false, so the walk falls through to the categorical test.
         """
         where = "ensemble.trees[%d]" % t
-        feature = _get(tree, "feature", list, where)
+        feature = _get(tree, "feature", _NODE_ARRAYS, where)
         n = len(feature)
         _need(0 < n <= limits["max_nodes_per_tree"], "%s node count out of bounds" % where)
         arrays = {}
         for key in ("threshold", "left", "right", "missing_left", "value"):
-            arrays[key] = _get(tree, key, list, where)
+            arrays[key] = _get(tree, key, _NODE_ARRAYS, where)
             _need(len(arrays[key]) == n, "%s.%s has %d entries, expected %d" % (where, key, len(arrays[key]), n))
         cat_sets = tree.get("left_categories", {})
         _need(isinstance(cat_sets, dict), "%s.left_categories must be an object" % where)
         left, right = arrays["left"], arrays["right"]
         # Walk from the root; every node must be reached exactly once (a tree, no cycles).
+        # The checks are written out inline (not through _need): a big forest has a million nodes.
+        n_features = self.n_features
+        max_depth = limits["max_depth"]
         depth_of = [-1] * n
         depth_of[0] = 0
         order = [0]
+        append = order.append
         i = 0
         while i < len(order):
             node = order[i]
             i += 1
             f = feature[node]
-            _need(isinstance(f, int) and not isinstance(f, bool), "%s.feature[%d] is not an integer" % (where, node))
+            if f.__class__ is not int:
+                _need(isinstance(f, int) and not isinstance(f, bool),
+                      "%s.feature[%d] is not an integer" % (where, node))
             if f == -1:
-                _need(left[node] == -1 and right[node] == -1, "%s: leaf %d has children" % (where, node))
+                if left[node] != -1 or right[node] != -1:
+                    _need(False, "%s: leaf %d has children" % (where, node))
                 continue
-            _need(0 <= f < self.n_features, "%s.feature[%d]=%r out of range" % (where, node, f))
-            _need(depth_of[node] < limits["max_depth"], "%s deeper than max_depth=%d" % (where, limits["max_depth"]))
+            if not 0 <= f < n_features:
+                _need(False, "%s.feature[%d]=%r out of range" % (where, node, f))
+            d = depth_of[node]
+            if d >= max_depth:
+                _need(False, "%s deeper than max_depth=%d" % (where, max_depth))
             for child in (left[node], right[node]):
-                _need(isinstance(child, int) and not isinstance(child, bool) and 0 < child < n,
-                      "%s: node %d has child %r out of range" % (where, node, child))
-                _need(depth_of[child] == -1, "%s: node %d is reached twice (not a tree)" % (where, child))
-                depth_of[child] = depth_of[node] + 1
-                order.append(child)
+                if not (child.__class__ is int and 0 < child < n):
+                    _need(isinstance(child, int) and not isinstance(child, bool) and 0 < child < n,
+                          "%s: node %d has child %r out of range" % (where, node, child))
+                if depth_of[child] != -1:
+                    _need(False, "%s: node %d is reached twice (not a tree)" % (where, child))
+                depth_of[child] = d + 1
+                append(child)
         _need(len(order) == n, "%s has unreachable nodes" % where)
         for key in cat_sets:
             _need(key != "" and not key.strip("0123456789") and int(key) < n and feature[int(key)] >= 0,
                   "%s.left_categories names node %r, which is not a split" % (where, key))
         built = [None] * n
+        values, thresholds, missing = arrays["value"], arrays["threshold"], arrays["missing_left"]
+        categories = self.categories
         for node in reversed(order):  # children before parents
             f = feature[node]
             if f == -1:
-                built[node] = _number(arrays["value"][node], "%s.value[%d]" % (where, node))
-                _need(abs(built[node]) != _INF, "%s.value[%d] is not finite" % (where, node))
+                v = values[node]
+                if v.__class__ is not float or v != v or v == _INF or v == -_INF:
+                    v = _number(v, "%s.value[%d]" % (where, node))
+                    _need(abs(v) != _INF, "%s.value[%d] is not finite" % (where, node))
+                built[node] = v
                 continue
-            missing_left = arrays["missing_left"][node]
-            _need(isinstance(missing_left, bool), "%s.missing_left[%d] is not true/false" % (where, node))
-            key = str(node)
-            if self.categories[f] is None:
-                _need(key not in cat_sets, "%s: node %d lists categories but splits a numeric feature" % (where, node))
-                threshold = _number(arrays["threshold"][node], "%s.threshold[%d]" % (where, node))
+            missing_left = missing[node]
+            if missing_left is not True and missing_left is not False:
+                _need(False, "%s.missing_left[%d] is not true/false" % (where, node))
+            if categories[f] is None:
+                if cat_sets and str(node) in cat_sets:
+                    _need(False, "%s: node %d lists categories but splits a numeric feature" % (where, node))
+                threshold = thresholds[node]
+                if threshold.__class__ is not float or threshold != threshold:
+                    threshold = _number(threshold, "%s.threshold[%d]" % (where, node))
                 built[node] = (f, threshold, built[left[node]], built[right[node]], missing_left)
             else:
+                key = str(node)
                 _need(key in cat_sets, "%s: node %d splits a categorical feature but lists no categories"
                       % (where, node))
                 codes = cat_sets[key]
                 _need(isinstance(codes, list) and all(
-                    isinstance(c, int) and not isinstance(c, bool) and 0 <= c < len(self.categories[f])
+                    isinstance(c, int) and not isinstance(c, bool) and 0 <= c < len(categories[f])
                     for c in codes), "%s.left_categories[%r] holds a bad category code" % (where, key))
                 built[node] = (f, _NAN, built[left[node]], built[right[node]], (missing_left, set(codes)))
         return built[0], n, max(depth_of)
