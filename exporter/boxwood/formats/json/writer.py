@@ -10,12 +10,13 @@ they read back to the same bits. Infinite thresholds are written as the strings
 from __future__ import annotations
 
 import functools
+import hashlib
 import math
 import struct
 from pathlib import Path
-from typing import Any, Dict, Union
+from typing import Any, Dict, Iterator, List, Union
 
-from boxwood_runtime.scorer import FORMAT_NAME, artefact_bytes, json_float_15
+from boxwood_runtime.scorer import _DIGEST_PREFIX, FORMAT_NAME, artefact_bytes, canonical_bytes, json_float_15
 
 from ...ir import Ensemble
 
@@ -93,9 +94,29 @@ def _step(step: Dict[str, Any]) -> Dict[str, Any]:
     return out
 
 
+def _tree(t: Any) -> Dict[str, Any]:
+    tree: Dict[str, Any] = {
+        "output": t.output,
+        "feature": list(t.feature),
+        "threshold": [number(v) for v in t.threshold],
+        "left": list(t.left),
+        "right": list(t.right),
+        "missing_left": [bool(m) for m in t.missing_left],
+        "value": [number(v) for v in t.value],
+    }
+    cats = {str(i): list(c) for i, c in enumerate(t.left_categories) if c is not None}
+    if cats:
+        tree["left_categories"] = cats
+    return tree
+
+
 def to_document(ensemble: Ensemble) -> Dict[str, Any]:
     """The artefact body (everything but the digest) for ``ensemble``."""
     ensemble.check()
+    return _document(ensemble, [_tree(t) for t in ensemble.trees])
+
+
+def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]:
     features = []
     for f in ensemble.features:
         entry: Dict[str, Any] = {"name": f.name, "kind": f.kind}
@@ -104,21 +125,6 @@ def to_document(ensemble: Ensemble) -> Dict[str, Any]:
         if f.source is not None:
             entry["source"] = {"field": f.source["field"], "steps": [_step(st) for st in f.source["steps"]]}
         features.append(entry)
-    trees = []
-    for t in ensemble.trees:
-        tree: Dict[str, Any] = {
-            "output": t.output,
-            "feature": list(t.feature),
-            "threshold": [number(v) for v in t.threshold],
-            "left": list(t.left),
-            "right": list(t.right),
-            "missing_left": [bool(m) for m in t.missing_left],
-            "value": [number(v) for v in t.value],
-        }
-        cats = {str(i): list(c) for i, c in enumerate(t.left_categories) if c is not None}
-        if cats:
-            tree["left_categories"] = cats
-        trees.append(tree)
     inputs: Dict[str, Any] = {
         "features": features,
         "compare_precision": ensemble.compare_precision,
@@ -182,11 +188,56 @@ def to_bytes(ensemble: Ensemble) -> bytes:
     return artefact_bytes(to_document(ensemble))
 
 
+_TREES_MARK = "boxwood-trees-\u2603"  # stands in for the trees while the rest is serialised
+
+
+def _chunks(ensemble: Ensemble) -> Iterator[bytes]:
+    """The canonical body (``canonical_bytes(to_document(ensemble))``) in pieces: the
+    document without its trees, then each tree serialised on its own, so a big forest is
+    never held as one document or one string. The pieces join to exactly the canonical bytes
+    (sorted keys, "," and ":" separators, so a list is its items' JSON joined by ",")."""
+    ensemble.check()
+    doc = _document(ensemble, [])
+    doc["ensemble"]["trees"] = _TREES_MARK
+    head = canonical_bytes(doc)
+    mark = canonical_bytes(_TREES_MARK)
+    if head.count(mark) != 1:  # the mark's text appears elsewhere: serialise in one piece
+        yield canonical_bytes(_document(ensemble, [_tree(t) for t in ensemble.trees]))
+        return
+    before, after = head.split(mark)
+    yield before + b"["
+    for i, t in enumerate(ensemble.trees):
+        yield (b"," if i else b"") + canonical_bytes(_tree(t))
+    yield b"]" + after
+
+
 def write(ensemble: Ensemble, path: Union[str, Path]) -> int:
-    """Write the artefact to ``path`` (atomically: a temporary file, then rename); return its size."""
-    data = to_bytes(ensemble)
+    """Write the artefact to ``path`` (atomically: a temporary file, then rename); return its size.
+
+    The body is written tree by tree while it is hashed; the digest, which comes first in the
+    file, is written into its place at the end (the bytes equal ``to_bytes(ensemble)``)."""
     path = Path(path)
     tmp = path.with_name(path.name + ".partial")
-    tmp.write_bytes(data)
+    digest = hashlib.sha256()
+    try:
+        size = _write_to(ensemble, tmp, digest)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
     tmp.replace(path)
-    return len(data)
+    return size
+
+
+def _write_to(ensemble: Ensemble, tmp: Path, digest: Any) -> int:
+    with open(tmp, "wb") as fh:
+        fh.write(_DIGEST_PREFIX + b"0" * 64 + b'",')
+        first = True
+        for chunk in _chunks(ensemble):
+            digest.update(chunk)
+            fh.write(chunk[1:] if first else chunk)  # the body's "{" follows the digest's ","
+            first = False
+        fh.write(b"\n")
+        size = fh.tell()
+        fh.seek(len(_DIGEST_PREFIX))
+        fh.write(digest.hexdigest().encode("ascii"))
+    return size
