@@ -24,6 +24,7 @@ Generated probes, in priority order, within a row budget (``DEFAULT_PROBE_ROWS``
 from __future__ import annotations
 
 import math
+import struct
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
@@ -352,9 +353,29 @@ class _Plan:
         return row
 
 
-def _node_constraints(tree: Tree, precision: str, plan: _Plan) -> Dict[int, Tuple[Dict[int, Any], ...]]:
+class _Boundaries:
+    """``numerics.left_boundary`` remembered per threshold (by its bits, so 0.0 and -0.0 stay
+    apart): a big forest repeats thresholds (midpoints between the same training values)
+    across its trees and sides, and the float32 boundary is exact rational arithmetic."""
+
+    def __init__(self) -> None:
+        self.known: Dict[Tuple[bytes, str], float] = {}
+
+    def __call__(self, t: float, precision: str) -> float:
+        if precision == "float64":
+            return t
+        key = (struct.pack("<d", t), precision)
+        b = self.known.get(key)
+        if b is None:
+            b = self.known[key] = numerics.left_boundary(t, precision)
+        return b
+
+
+def _node_constraints(tree: Tree, precision: str, plan: _Plan,
+                      boundary: Any = numerics.left_boundary) -> Dict[int, Tuple[Dict[int, Any], ...]]:
     """For each node of ``tree``, the conditions on the path from the root:
-    {feature: (lo_excl, hi_incl)} for numeric features, {feature: set of category values}."""
+    {feature: (lo_excl, hi_incl)} for numeric features, {feature: set of category values}.
+    ``boundary(t, precision)`` is numerics.left_boundary (or a :class:`_Boundaries`)."""
     out: Dict[int, Any] = {}
     stack: List[Tuple[int, Dict[int, Any]]] = [(0, {})]
     while stack:
@@ -364,7 +385,7 @@ def _node_constraints(tree: Tree, precision: str, plan: _Plan) -> Dict[int, Tupl
         if f == LEAF or f >= len(plan.features):
             continue
         if tree.left_categories[node] is None:
-            b = numerics.left_boundary(tree.threshold[node], precision)
+            b = boundary(tree.threshold[node], precision)
             lo, hi = cons.get(f, (None, math.inf))
             left = dict(cons)
             left[f] = (lo, min(hi, b))
@@ -478,6 +499,7 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
 
     # 2. split probes: distinct boundaries first, then the other nodes
     first, rest, seen_b = [], [], set()
+    boundary = _Boundaries()
     for s, (e, precision, label) in enumerate(sides):
         for ti, t in enumerate(e.trees):
             for node in range(t.n_nodes):
@@ -485,7 +507,7 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
                 if f == LEAF or f >= len(plan.features):
                     continue
                 if t.left_categories[node] is None:
-                    key = (f, numerics.left_boundary(t.threshold[node], precision))
+                    key = (f, boundary(t.threshold[node], precision))
                 else:
                     key = (f, t.left_categories[node], t.missing_left[node])
                 target = (s, ti, node)
@@ -499,7 +521,7 @@ def generate(source: Ensemble, ensembles: Sequence[Tuple[Ensemble, str, str]], b
         e, precision, label = sides[s]
         t = e.trees[ti]
         if (s, ti) not in cache:
-            cache[(s, ti)] = _node_constraints(t, precision, plan)
+            cache[(s, ti)] = _node_constraints(t, precision, plan, boundary)
         cons = cache[(s, ti)].get(node)
         if cons is None:
             continue
