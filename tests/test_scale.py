@@ -5,6 +5,7 @@ One two-worker LocalCluster for the module (worker processes, one thread each); 
 command-line runs join it by its scheduler address, as `--dask tcp://...` does."""
 from __future__ import annotations
 
+import io
 import json
 import math
 from pathlib import Path
@@ -19,7 +20,9 @@ pytest.importorskip("pyarrow")
 import joblib  # noqa: E402
 import pandas as pd  # noqa: E402
 
+import boxwood_runtime  # noqa: E402
 import zoo  # noqa: E402
+from boxwood_runtime.stream import score_stream  # noqa: E402
 from boxwood import scale  # noqa: E402
 from boxwood.cli import main  # noqa: E402
 from test_verify import document, write  # noqa: E402
@@ -55,7 +58,7 @@ def pipe_frame(n, start, seed):
     frame = case.X.iloc[start:start + n].copy().reset_index(drop=True)
     rng = np.random.default_rng(seed)
     frame.loc[rng.random(n) < 0.15, "bmi"] = np.nan
-    frame.loc[rng.random(n) < 0.15, "sex"] = None
+    frame.loc[rng.random(n) < 0.15, "sex"] = np.nan  # missing as pandas reads it from a file
     frame.insert(0, "id", ["r%d" % (start + i) for i in range(n)])
     return frame
 
@@ -159,3 +162,159 @@ def test_csv_partitions_give_what_one_process_gives_bit_for_bit(tmp, client, csv
         expected = model.predict(as_read.drop(columns="id"))
         assert [float(v) for v in ok["raw_0"]] == [float(v) for v in expected]
         assert all(float(a).hex() == float(b).hex() for a, b in zip(ok["raw_0"], expected))
+
+
+def test_jsonl_partitions_give_what_one_process_gives_bit_for_bit(tmp, client, jsonl_files):
+    folder, good = jsonl_files
+    art = artefact(tmp, NAN)
+    out = tmp / "jsonl-out"
+    code = main(["score", str(art), str(folder / "*.jsonl"), "--dask", client.scheduler.address,
+                 "-o", str(out), "--raw-scores"])
+    assert code == 2
+    files = sorted(folder.glob("*.jsonl"))
+    outputs = concat(out, ".jsonl")
+    assert len(outputs) == len(files) == 3
+    errors = []
+    for path, text in zip(files, outputs):
+        assert text == one_process(art, path)
+        rows = [json.loads(line) for line in text.splitlines()]
+        assert len(rows) == len(path.read_text().splitlines())  # rows in = rows out
+        errors += [(path.name, r["error"].split(":")[0]) for r in rows if r["error"]]
+    assert errors == [("part0.jsonl", "row 5 (line 5)"), ("part2.jsonl", "row 8 (line 8), field 'x3'"),
+                      ("part2.jsonl", "row 21 (line 21), field 'x1'")]
+    model = zoo.fitted(NAN).model
+    for keep, text in zip(good, outputs):
+        ok = [json.loads(line) for line in text.splitlines()]
+        ok = [r for r in ok if r["error"] is None]
+        X = np.array([[np.nan if v is None else v for v in r] for r in keep], dtype=float)
+        expected = model.decision_function(X)
+        assert [r["raw_0"] for r in ok] == [float(v) for v in expected]
+        assert all(math.copysign(1, r["raw_0"]) == math.copysign(1, v) for r, v in zip(ok, expected))
+
+
+def test_parquet_partitions_read_typed_values(tmp, client):
+    """Parquet's typed values are read as JSON values are: the output equals one process on the
+    same rows written as JSON Lines with exactly read numbers, and scikit-learn on the file."""
+    folder = tmp / "parquet"
+    folder.mkdir()
+    art = artefact(tmp, PIPE)
+    frames = [pipe_frame(30, 300, 7), pipe_frame(25, 330, 8)]
+    frames[1].loc[3, "sex"] = "other"  # the pipeline encodes an unseen category as unknown
+    for k, frame in enumerate(frames):
+        frame.to_parquet(folder / ("f%d.parquet" % k))
+        with open(folder / ("f%d.jsonl.ref" % k), "w") as fh:
+            for rec in frame.to_dict("records"):
+                fh.write(json.dumps({k2: (None if isinstance(v, float) and v != v else v) for k2, v in rec.items()})
+                         + "\n")
+    out = tmp / "parquet-out"
+    summary = scale.score_files(art, str(folder / "*.parquet"), str(out), client=client, raw_scores=True)
+    assert summary == scale.Summary(55, 55, 0, 2, 2, None)
+    device = boxwood_runtime.load(art.read_bytes())
+    device.json_float = float  # the reference lines hold repr floats: read them exactly, as Parquet holds them
+    model = zoo.fitted(PIPE).model
+    for k, text in enumerate(concat(out, ".jsonl")):
+        ref = io.StringIO()
+        with open(folder / ("f%d.jsonl.ref" % k)) as fh:
+            score_stream(device, fh, ref, raw_scores=True)
+        assert text == ref.getvalue()
+        rows = [json.loads(line) for line in text.splitlines()]
+        expected = model.predict(pd.read_parquet(folder / ("f%d.parquet" % k)).drop(columns="id"))
+        assert [float(r["raw_0"]).hex() for r in rows] == [float(v).hex() for v in expected]
+
+
+def test_score_dataframe_maps_partitions_lazily(tmp, client, csv_files):
+    import dask.dataframe as dd
+
+    folder, good = csv_files
+    art = artefact(tmp, PIPE)
+    frame = pd.concat(good, ignore_index=True)
+    ddf = dd.from_pandas(frame, npartitions=5)
+    scored = scale.score_dataframe(str(art), ddf, raw_scores=True)
+    assert scored.npartitions == 5 and list(scored.columns) == ["id", "prediction", "raw_0", "error"]
+    result = scored.compute()
+    assert len(result) == len(frame) and list(result["id"]) == list(frame["id"])
+    assert result["error"].isna().all()
+    expected = zoo.fitted(PIPE).model.predict(frame.drop(columns="id"))
+    assert [float(v).hex() for v in result["raw_0"]] == [float(v).hex() for v in expected]
+    # CSV cell texts: the same numbers as reading the file on one process
+    cells = dd.from_pandas(pd.read_csv(folder / "day01.csv", dtype=object, keep_default_na=False), npartitions=3)
+    texts = scale.score_dataframe(art.read_bytes(), cells, raw_scores=True, reading="text").compute()
+    one = pd.read_csv(pd.io.common.StringIO(one_process(art, folder / "day01.csv")), dtype=str,
+                      keep_default_na=False)
+    assert [repr(v) for v in texts["raw_0"]] == list(one["raw_0"])
+
+
+def model_file(tmp, name):
+    path = tmp / (name + ".joblib")
+    if not path.exists():
+        joblib.dump(zoo.fitted(name).model, path)
+    return str(path)
+
+
+def test_verify_dask_passes_on_good_data(tmp, client, csv_files, capsys):
+    folder, good = csv_files
+    clean = tmp / "clean-csv"
+    clean.mkdir()
+    for k, frame in enumerate(good):
+        frame.to_csv(clean / ("d%d.csv" % k), index=False)
+    args = ["verify", model_file(tmp, PIPE), str(artefact(tmp, PIPE)), "--dask", client.scheduler.address,
+            "--probes", "50", "--quiet", "--data"]
+    report = tmp / "report.json"
+    assert main(args + [str(clean / "*.csv"), "--report-json", str(report)]) == 0
+    done = json.loads(report.read_text())
+    assert done["verdict"] == "pass" and done["rows"]["data"] == sum(len(f) for f in good)  # every file's rows
+    # a bad row in the data is bad input (exit 2), named by its file and row
+    capsys.readouterr()
+    assert main(args + [str(folder / "day0[03].csv")]) == 2
+    assert "day00.csv" in capsys.readouterr().err
+
+
+def test_verify_dask_fails_on_a_planted_fault(tmp, client, jsonl_files):
+    folder, good = jsonl_files
+    clean = tmp / "clean-jsonl"
+    clean.mkdir()
+    for k, rows in enumerate(good):
+        with open(clean / ("d%d.jsonl" % k), "w") as fh:
+            for r in rows:
+                fh.write(json.dumps({"x%d" % j: v for j, v in enumerate(r)}) + "\n")
+    _, doc = document(NAN)
+    tree = doc["ensemble"]["trees"][3]
+    leaf = tree["feature"].index(-1)
+    tree["value"][leaf] += 0.25
+    bad = write(doc, tmp / "bad.json")
+    args = ["verify", model_file(tmp, NAN), "--data", str(clean / "*.jsonl"), "--dask", client.scheduler.address,
+            "--probes", "0", "--quiet"]
+    assert main(args[:2] + [str(artefact(tmp, NAN))] + args[2:]) == 0
+    assert main(args[:2] + [str(bad)] + args[2:]) == 1
+
+
+def test_missing_dask_is_bad_usage_with_the_install_hint(tmp, monkeypatch, capsys, csv_files):
+    def missing():
+        raise scale.MissingScale("scoring on Dask needs dask[dataframe], distributed and pyarrow: "
+                                 + scale.INSTALL_HINT)
+
+    monkeypatch.setattr(scale, "require", missing)
+    folder, _ = csv_files
+    code = main(["score", str(artefact(tmp, PIPE)), str(folder / "*.csv"), "--dask", "local", "-o",
+                 str(tmp / "never")])
+    assert code == 2 and 'pip install "boxwood[scale]"' in capsys.readouterr().err
+    assert not (tmp / "never").exists()
+
+
+def test_usage_errors(tmp, capsys, csv_files):
+    folder, _ = csv_files
+    art = str(artefact(tmp, PIPE))
+    assert main(["score", art, str(folder / "*.csv"), "--dask", "local"]) == 2  # no -o
+    assert main(["score", art, str(tmp / "nothing-*.csv"), "--dask", "local", "-o", str(tmp / "o")]) == 2
+    assert "no file matches" in capsys.readouterr().err
+
+
+def test_dask_local_starts_and_stops_its_own_cluster(tmp, jsonl_files, capsys):
+    folder, _ = jsonl_files
+    art = artefact(tmp, NAN)
+    out = tmp / "local-out"
+    assert main(["score", str(art), str(folder / "*.jsonl"), "--dask", "local", "--workers", "2", "-o", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "scored 180 rows, 3 errors, 3 partitions, 3 files written" in err
+    for path, text in zip(sorted(folder.glob("*.jsonl")), concat(out, ".jsonl")):
+        assert text == one_process(art, path, raw=False)

@@ -143,16 +143,15 @@ def _long_row(cells):
 
 # ----------------------------------------------------------------------------- scoring one partition
 def _plain(value: Any) -> Any:
-    """A dataframe cell as a JSON-like Python value: numpy numbers as Python numbers, every
-    missing marker (None, NaN, pandas NA/NaT) as None."""
+    """A dataframe cell as a plain Python value: numpy numbers as Python numbers, pandas' NA
+    and NaT as None; None stays None and NaN stays NaN (a text field tells them apart, as
+    the fitted pipeline does)."""
     if value is None:
         return None
     if value.__class__.__name__ in ("NAType", "NaTType"):
         return None
     if hasattr(value, "item") and not isinstance(value, (str, bytes)):
         value = value.item()
-    if isinstance(value, float) and math.isnan(value):
-        return None
     return value
 
 
