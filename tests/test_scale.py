@@ -33,7 +33,7 @@ NAN = "hgbc_nan"
 
 @pytest.fixture(scope="module")
 def client():
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None)
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0")
     c = distributed.Client(cluster)
     yield c
     c.close()

@@ -371,7 +371,8 @@ def score_files(artefact: Any, pattern: str, out_dir: str, client: Any = None, r
 
 # ----------------------------------------------------------------------------- verify
 def _records_partition(pdf, blob, kind, delimiter, label):
-    """The device records of one partition (dicts by input name); ValueError on a bad row."""
+    """``(records, None)``: the device records of one partition (dicts by input name), or
+    ``(None, message)`` naming the file and the first row that cannot be read."""
     from boxwood_runtime.stream import read_records
 
     model = _model(blob, "as_missing")
@@ -385,9 +386,9 @@ def _records_partition(pdf, blob, kind, delimiter, label):
     out = []
     for _n, _where, _ident, _has_id, record, error in rows:
         if error is not None:
-            raise ValueError("data file %r: %s" % (label, error))
+            return None, "data file %r: %s" % (label, error)
         out.append({name: record.get(name) for name in names})
-    return out
+    return out, None
 
 
 def read_records_dask(model: Any, pattern: str, client: Any = None, delimiter: str = ",") -> List[Dict[str, Any]]:
@@ -408,4 +409,7 @@ def read_records_dask(model: Any, pattern: str, client: Any = None, delimiter: s
     task = dask.delayed(_records_partition, pure=True)
     jobs = [task(p, shared, kind, delimiter, os.path.basename(f)) for p, f in zip(parts, files)]
     results = client.gather(client.compute(jobs)) if client is not None else dask.compute(*jobs)
-    return [r for part in results for r in part]
+    for _records, error in results:  # the first bad file in file order, whichever finished first
+        if error is not None:
+            raise ValueError(error)
+    return [r for records, _error in results for r in records]

@@ -53,7 +53,7 @@ def connect(address, workers=None):
     except ImportError as exc:
         raise UsageError("--dask needs Dask: %s (%s)" % (scale.INSTALL_HINT, exc))
     if address == "local":
-        cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1, dashboard_address=None)
+        cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1, dashboard_address=":0")
         return distributed.Client(cluster)
     try:
         return distributed.Client(address, timeout="20s")
