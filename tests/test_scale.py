@@ -307,6 +307,11 @@ def test_usage_errors(tmp, capsys, csv_files):
     assert main(["score", art, str(folder / "*.csv"), "--dask", "local"]) == 2  # no -o
     assert main(["score", art, str(tmp / "nothing-*.csv"), "--dask", "local", "-o", str(tmp / "o")]) == 2
     assert "no file matches" in capsys.readouterr().err
+    used = tmp / "used"
+    used.mkdir()
+    (used / "part-00000-old.csv").write_text("id\n")
+    assert main(["score", art, str(folder / "*.csv"), "--dask", "local", "-o", str(used)]) == 2
+    assert "already holds part-* files" in capsys.readouterr().err
 
 
 def test_dask_local_starts_and_stops_its_own_cluster(tmp, jsonl_files, capsys):

@@ -72,6 +72,9 @@ def run_dask(args):
         raise UsageError("--dask needs -o OUTDIR: the folder for the output files")
     if os.path.exists(args.output) and not os.path.isdir(args.output):
         raise UsageError("-o %r is a file; --dask writes a folder of output files" % args.output)
+    if os.path.isdir(args.output) and any(n.startswith("part-") for n in os.listdir(args.output)):
+        raise UsageError("-o %r already holds part-* files (an earlier run?); remove them or choose another "
+                         "folder, so that the folder holds one run's outputs" % args.output)
     if args.format != "auto":
         raise UsageError("--dask tells the format from each file's extension; drop --format")
     load_artefact(args.artefact, unknown_category=args.unknown_category)  # exit codes as without --dask
