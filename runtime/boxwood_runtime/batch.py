@@ -18,6 +18,17 @@ goes right, so extra steps leave finished rows where they are. A missing value
 a category code goes left when it is set in the node's row of a boolean look-up
 table of shape (categorical splits, categories).
 
+Memory. An ndarray is checked and prepared block by block (``BLOCK_ROWS`` rows; for the
+C engine, that many per thread): ``predict``, ``predict_proba``, ``decision_function``
+and ``score_samples`` copy a block of the caller's rows, check and prepare it, score it
+and finish it into one preallocated result, so beyond the result only a few blocks'
+worth is allocated; ``prepare`` alone fills its full float64 result the same way. The
+first bad value still decides the error: blocks are checked in row order, and a block
+with anything to report goes through the full check, which names its first bad row
+(counted from the start of the input) and, in that row, its first bad field.
+tests/test_batch_memory.py holds the peak traced memory of a 1,000,000-row call, the
+result included, to at most 1.5 times the input array's size.
+
 Exactness. Raw scores are built exactly as the pure-Python scorer builds them: the
 base value first, then the leaf value of each tree of that output, in tree order,
 added in float64 (for ``combine == "mean"``: the leaves summed from 0.0, divided by
