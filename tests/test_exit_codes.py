@@ -65,7 +65,7 @@ def test_bad_input_rows_exit_2_with_a_clear_line(files, capsys):
         (["export", tmp / "data.jsonl", "-o", tmp / "x.json"], "this is a data file (JSON Lines), not a model"),
         (["export", tmp / "m.joblib", "-o", tmp / "nodir" / "x.json"], "the folder"),
         (["export", tmp / "m.joblib", "-o", tmp], "is a folder"),
-        (["inspect", tmp / "data.csv"], "expected a boxwood JSON artefact (.json) or an ONNX"),
+        (["inspect", tmp / "data.csv"], "expected a boxwood JSON artefact (.json), an ONNX tree-ensemble file (.onnx) or a boxwood C file"),
         (["inspect", tmp / "m.onnx", "--csv-header"], "score takes"),
         (["score", tmp / "m.json", tmp / "m.onnx"], "is an ONNX file; expected CSV with a header row or JSON Lines"),
         (["score", tmp / "m.json", tmp / "m.joblib"], "is a joblib or pickle model file; expected CSV"),

@@ -28,7 +28,7 @@ LAYERS = [
     ("boxwood", "boxwood.ir", "boxwood.numerics", "boxwood.schema", "boxwood.pages"),
     ("boxwood.contract", "boxwood.reference_rows"),
     ("boxwood.sources", "boxwood.formats", "boxwood.micropython"),
-    ("boxwood.export", "boxwood.verify", "boxwood.diff"),
+    ("boxwood.export", "boxwood.verify", "boxwood.diff", "boxwood.scale"),
     ("boxwood.bundle", "boxwood.demo"),
     ("boxwood.cli", "boxwood.__main__"),
 ]

@@ -18,6 +18,17 @@ goes right, so extra steps leave finished rows where they are. A missing value
 a category code goes left when it is set in the node's row of a boolean look-up
 table of shape (categorical splits, categories).
 
+Memory. An ndarray is checked and prepared block by block (``BLOCK_ROWS`` rows; for the
+C engine, that many per thread): ``predict``, ``predict_proba``, ``decision_function``
+and ``score_samples`` copy a block of the caller's rows, check and prepare it, score it
+and finish it into one preallocated result, so beyond the result only a few blocks'
+worth is allocated; ``prepare`` alone fills its full float64 result the same way. The
+first bad value still decides the error: blocks are checked in row order, and a block
+with anything to report goes through the full check, which names its first bad row
+(counted from the start of the input) and, in that row, its first bad field.
+tests/test_batch_memory.py holds the peak traced memory of a 1,000,000-row call, the
+result included, to at most 1.5 times the input array's size.
+
 Exactness. Raw scores are built exactly as the pure-Python scorer builds them: the
 base value first, then the leaf value of each tree of that output, in tree order,
 added in float64 (for ``combine == "mean"``: the leaves summed from 0.0, divided by
@@ -89,6 +100,9 @@ class BatchModel:
         self.feature_names = list(model.feature_names)
         self._n_categories = [None if c is None else len(c) for c in model.categories]
         self._numeric_cols = np.array([c is None for c in model.categories], dtype=bool)
+        self._categorical_cols = [(j, n) for j, n in enumerate(self._n_categories) if n is not None]
+        # rows per step of the fused path: the C engine splits a step across its threads
+        self._step_rows = BLOCK_ROWS * (self._native.threads if self._native is not None else 1)
         self._build_nodes()
 
     # -- layout ----------------------------------------------------------------------
@@ -164,12 +178,35 @@ class BatchModel:
         is one record) that are passed one by one to ``Model.prepare``, so errors are
         the same as the pure-Python scorer's. Raises RecordError naming the row and
         field of the first bad value.
+
+        An ndarray is checked and converted block by block into the result, so the
+        memory needed beyond the result is a few blocks' worth; the caller's array is
+        never changed.
         """
+        X = self._array_or_rows(records)
+        if X.__class__ is not _Unprepared:
+            return X
+        X = X.array
+        out = np.empty(X.shape, dtype=np.float64)
+        for lo in range(0, X.shape[0], BLOCK_ROWS):
+            buf = out[lo:lo + BLOCK_ROWS]
+            buf[...] = X[lo:lo + BLOCK_ROWS]
+            done = self._prepare_block(buf, lo)
+            if done is not buf:
+                buf[...] = done
+        return out
+
+    def _array_or_rows(self, records):
+        """A prepared matrix for record lists; an :class:`_Unprepared` wrapping a numeric
+        ndarray of the right shape, still to be checked block by block."""
         if isinstance(records, np.ndarray) and self.model.preprocesses:
             raise RecordError(None, None, "this artefact carries preprocessing (raw fields %s); pass a list of "
                               "records, not a feature matrix" % ", ".join(self.model.input_names))
         if isinstance(records, np.ndarray) and records.dtype.kind in "fiu":
-            return self._prepare_array(records)
+            if records.ndim != 2 or records.shape[1] != self.n_features:
+                raise RecordError(None, None, "the array has shape %s, the model takes (n, %d) columns (%s)"
+                                  % (records.shape, self.n_features, ", ".join(self.feature_names)))
+            return _Unprepared(records)
         if isinstance(records, np.ndarray):
             if records.dtype.kind != "O":
                 raise RecordError(None, None, "expected a numeric or object array, got dtype %s"
@@ -184,12 +221,40 @@ class BatchModel:
         rows = [prepare(r, i) for i, r in enumerate(records)]
         return np.array(rows, dtype=np.float64).reshape(len(rows), self.n_features)
 
-    def _prepare_array(self, X):
+    def _prepare_block(self, X, offset):
+        """Check and prepare rows ``offset ..`` of the caller's array, given as ``X``: a
+        float64 copy of them that this method may change. Returns the prepared block (``X``
+        itself or a new array). A quick look finds blocks that need nothing but the float32
+        rounding; any other block goes through :meth:`_prepare_checked`, which finds the
+        first bad value or applies unknown_category="as_missing"."""
         m = self.model
-        if X.ndim != 2 or X.shape[1] != self.n_features:
-            raise RecordError(None, None, "the array has shape %s, the model takes (n, %d) columns (%s)"
-                              % (X.shape, self.n_features, ", ".join(self.feature_names)))
-        X = np.array(X, dtype=np.float64)  # a copy: the caller's array is never changed
+        if m.missing_values == "reject":
+            suspect = not (np.isfinite(X).all() if not m.accepts_infinity else not np.isnan(X).any())
+        else:
+            suspect = not m.accepts_infinity and bool(np.isinf(X).any())
+        if not suspect:
+            for j, n_cats in self._categorical_cols:
+                col = X[:, j]
+                good = (col >= 0) & (col < n_cats) & (col == np.floor(col))  # False for NaN
+                good |= np.isnan(col)
+                if not good.all():
+                    suspect = True
+                    break
+        if suspect:
+            return self._prepare_checked(X, offset)
+        if m.compare_precision == "float32":
+            with np.errstate(over="ignore"):
+                X32 = X.astype(np.float32)
+            inf32 = np.isinf(X32)
+            if inf32.any() and (inf32 & np.isfinite(X)).any():
+                return self._prepare_checked(X, offset)
+            X[...] = X32
+        return X
+
+    def _prepare_checked(self, X, offset):
+        """The full check of a block (float64, changed in place): every bad value marked,
+        then the first one raised (row numbers counted from ``offset``)."""
+        m = self.model
         nan = np.isnan(X)
         bad = np.zeros(X.shape, dtype=bool)
         reason = np.zeros(X.shape, dtype=np.int8)  # 1 missing, 2 infinity, 3 bad code
@@ -198,9 +263,7 @@ class BatchModel:
             inf = np.isinf(X) & num
             bad |= inf
             reason[inf] = 2
-        for j, n_cats in enumerate(self._n_categories):
-            if n_cats is None:
-                continue
+        for j, n_cats in self._categorical_cols:
             col = X[:, j]
             wrong = ~nan[:, j] & ~((col >= 0) & (col < n_cats) & (col == np.floor(col)))
             if not wrong.any():
@@ -220,30 +283,32 @@ class BatchModel:
                 X32 = X.astype(np.float32)
             overflow = np.isinf(X32) & np.isfinite(X)
         if bad.any() or (overflow is not None and overflow.any()):
-            self._raise_first(X, bad, reason, overflow)
+            self._raise_first(X, bad, reason, overflow, offset)
         if overflow is not None:
-            X = X32.astype(np.float64)
+            X[...] = X32
         return X
 
-    def _raise_first(self, X, bad, reason, overflow):
+    def _raise_first(self, X, bad, reason, overflow, offset=0):
         """Raise the error the per-record scorer raises: the first bad row, in it the first
-        bad value, and only then a value outside the float32 range."""
+        bad value, and only then a value outside the float32 range. ``X`` and the masks
+        cover one block, whose first row is row ``offset`` of the input."""
         any_row = bad.any(axis=1)
         if overflow is not None:
             any_row = any_row | overflow.any(axis=1)
         r = int(np.argmax(any_row))
+        row = offset + r
         if bad[r].any():
             c = int(np.argmax(bad[r]))
             name = self.feature_names[c]
             why = int(reason[r, c])
             if why == 1:
-                raise RecordError(r, name, "the value is missing, and this model does not accept missing values")
+                raise RecordError(row, name, "the value is missing, and this model does not accept missing values")
             if why == 2:
-                raise RecordError(r, name, "infinity is not accepted by this model")
-            raise RecordError(r, name, "category code %r is not one of 0..%d"
+                raise RecordError(row, name, "infinity is not accepted by this model")
+            raise RecordError(row, name, "category code %r is not one of 0..%d"
                               % (float(X[r, c]), self._n_categories[c] - 1))
         c = int(np.argmax(overflow[r]))
-        raise RecordError(r, self.feature_names[c],
+        raise RecordError(row, self.feature_names[c],
                           "%r is outside the float32 range this model compares in" % (float(X[r, c]),))
 
     # -- evaluation ------------------------------------------------------------------
@@ -327,9 +392,37 @@ class BatchModel:
         m = self.model
         return transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
 
+    def _run(self, records, finish):
+        """``finish(raw_scores(prepare(records)))`` in steps of rows: each step of an ndarray
+        is copied, checked and prepared, scored and finished before the next, and the
+        results fill one preallocated array; the only full-size allocation is the result.
+        Errors are the ones :meth:`prepare` raises: steps run in row order and each names
+        its first bad row, so the first error met is the first bad row of the input."""
+        X = self._array_or_rows(records)
+        unprepared = X.__class__ is _Unprepared
+        if unprepared:
+            X = X.array
+        n, step = X.shape[0], self._step_rows
+        buf = np.empty((min(n, step), self.n_features), dtype=np.float64) if unprepared else None
+        out = None
+        for lo in range(0, n, step) if n else [0]:
+            if unprepared:
+                part = buf[:min(step, n - lo)]
+                part[...] = X[lo:lo + step]
+                part = self._prepare_block(part, lo)
+            else:
+                part = X[lo:lo + step]
+            res = finish(self.raw_scores(part))
+            if out is None:
+                if n <= step:
+                    return res
+                out = np.empty((n,) + res.shape[1:], dtype=res.dtype)
+            out[lo:lo + res.shape[0]] = res
+        return out
+
     def decision_function(self, X):
         """Decision values (raw scores for boosted models): shape (n,) or (n, K)."""
-        d = self.decision_values(self.raw_scores(self.prepare(X)))
+        d = self._run(X, self.decision_values)
         return d[:, 0] if d.shape[1] == 1 else d
 
     def score_samples(self, X):
@@ -337,26 +430,31 @@ class BatchModel:
         m = self.model
         if m.task != "outlier_detection":
             raise TypeError("score_samples is for outlier detectors; this model does %s" % m.task)
-        return transform("isolation", self.raw_scores(self.prepare(X)), m.post_transform_params)[:, 0]
+        params = m.post_transform_params
+        return self._run(X, lambda raw: transform("isolation", raw, params)[:, 0])
 
     def predict(self, X):
         """Predictions (regression, shape (n,) or (n, K)) or class labels (shape (n,))."""
         m = self.model
-        raw = self.raw_scores(self.prepare(X))
         if m.task == "regression":
-            out = transform(m.post_transform, raw)
+            out = self._run(X, lambda raw: transform(m.post_transform, raw))
             return out[:, 0] if out.shape[1] == 1 else out
-        return np.asarray(m.classes)[self.class_index(raw)]
+        classes = np.asarray(m.classes)
+        return self._run(X, lambda raw: classes[self.class_index(raw)])
 
     def predict_proba(self, X):
         """Class probabilities, shape (n, number of classes), in the order of ``classes``."""
         m = self.model
         if m.task != "classification":
             raise TypeError("predict_proba is for classifiers; this model does %s" % m.task)
-        p = transform(m.post_transform, self.raw_scores(self.prepare(X)), m.post_transform_params, m.softmax_sum)
-        if p.shape[1] == 1:
-            return np.column_stack([1.0 - p[:, 0], p[:, 0]])
-        return p
+
+        def finish(raw):
+            p = transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
+            if p.shape[1] == 1:
+                return np.column_stack([1.0 - p[:, 0], p[:, 0]])
+            return p
+
+        return self._run(X, finish)
 
     def class_index(self, raw):
         """Index into ``classes`` of the predicted class for raw scores (n, n_outputs)."""
@@ -412,3 +510,12 @@ def transform(name, raw, params=None, softmax_sum="sequential"):
             q = raw / den if den != 0.0 else np.ones_like(raw)
             return -(2 ** (-q))
     raise ValueError("unknown post_transform %r" % (name,))
+
+
+class _Unprepared(object):
+    """A numeric ndarray of the right shape whose values are still to be checked."""
+
+    __slots__ = ("array",)
+
+    def __init__(self, array):
+        self.array = array

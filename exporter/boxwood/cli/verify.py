@@ -25,6 +25,11 @@ def add(commands):
     p.add_argument("--data", metavar="FILE",
                    help="rows to compare on besides the generated probes: CSV with a header row or JSON "
                         "Lines, read as 'boxwood score' reads them")
+    p.add_argument("--dask", metavar="local|ADDRESS",
+                   help="read --data on Dask: --data is then a quoted glob of CSV, JSON Lines or Parquet files "
+                        "(format by extension), read as 'score --dask' reads them on the workers; the "
+                        "comparison runs here on all their rows; 'local' starts a local cluster, an address "
+                        "joins a running scheduler; needs pip install \"boxwood[scale]\" (docs/scale.md)")
     p.add_argument("--abs-tol", type=tolerance, metavar="A",
                    help="absolute tolerance for every output kind (default: per kind, 0 for raw scores)")
     p.add_argument("--rel-tol", type=tolerance, metavar="R",
@@ -64,6 +69,24 @@ def _write_reports(args, result):
         verify_page(result).write(args.report_html)
 
 
+def _dask_rows(args):
+    """The rows of every --data file, read on the Dask cluster with the device reading."""
+    from .. import scale
+    from ..sources import load_model_file
+    from .score import connect
+
+    scale.expand(args.data)  # no file, or mixed formats: ValueError (exit 2) before a cluster starts
+    model = load_model_file(args.model)
+    client = connect(args.dask)
+    try:
+        return scale.read_records_dask(model, args.data, client=client)
+    finally:
+        cluster = client.cluster if args.dask == "local" else None
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
 def run(args):
     """Verify; the JSON, JUnit and HTML reports are written whenever asked, also when the run
     stops on bad input (exit 2: every artefact is then a failing case with the reason). A
@@ -71,6 +94,8 @@ def run(args):
     from ..verify import VerifyResult, verify
 
     settings = {"probes": args.probes, "seed": args.seed, "data": args.data}
+    if args.dask is not None and args.data is None:
+        raise UsageError("--dask reads --data on Dask: give --data 'GLOB'")
     if args.report_html:
         from .. import pages
 
@@ -84,11 +109,12 @@ def run(args):
             raise UsageError(message)
     try:
         problem = (_found(args.model, "model file")
-                   or (None if args.data is None else _found(args.data, "data file"))
+                   or (None if args.data is None or args.dask is not None else _found(args.data, "data file"))
                    or ("--probes must be 0 or more, got %d" % args.probes if args.probes < 0 else None))
         if problem:
             raise UsageError(problem)
-        result = verify(args.model, args.artefacts, data=args.data, abs_tol=args.abs_tol, rel_tol=args.rel_tol,
+        data = args.data if args.dask is None else _dask_rows(args)
+        result = verify(args.model, args.artefacts, data=data, abs_tol=args.abs_tol, rel_tol=args.rel_tol,
                         probes=args.probes, seed=args.seed, progress=False if args.quiet else None,
                         bad_artefacts="report")
     except ImportError as exc:  # an optional dependency (onnxruntime for .onnx files)
