@@ -273,7 +273,7 @@ def dask_vs_one(work, quick):
     header = ",".join("x%d" % j for j in range(X.shape[1]))
     for k in range(n_files):
         np.savetxt(os.path.join(folder, "part%02d.csv" % k), X[k * per:(k + 1) * per], delimiter=",",
-                   header=header, comments="", fmt="%r")
+                   header=header, comments="", fmt="%.17g")
     t0 = time.perf_counter()
     for k, f in enumerate(sorted(glob.glob(os.path.join(folder, "*.csv")))):
         subprocess.run([sys.executable, "-m", "boxwood", "score", art, f, "-o", os.path.join(work, "one%02d.csv" % k)],
@@ -388,7 +388,10 @@ def main(argv=None):
         rows += found
         found, grid = verify_grid(work, args.quick)
         rows += found
-        rows += dask_vs_one(work, args.quick)
+        try:
+            rows += dask_vs_one(work, args.quick)
+        except (OSError, subprocess.SubprocessError) as exc:  # reported, the rest of the run kept
+            rows.append(row("Dask vs one process", "boxwood score --dask local", "failed (%s)" % exc))
     print()
     print_table(rows)
     made = [] if args.no_plots else plots(args.plots, rows, grid, big)
