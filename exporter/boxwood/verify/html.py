@@ -23,6 +23,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 from .. import pages
 from .report import ArtefactReport, VerifyResult
+from .report import checks_table as report_checks_table
 
 KB = 1024
 MB = 1024 * 1024
@@ -129,24 +130,12 @@ def verify_page(result: VerifyResult) -> pages.Page:
 
 # ----------------------------------------------------------------------------- tables
 def checks_table(a: ArtefactReport) -> Tuple[List[str], List[List[Any]]]:
-    """Rows = checks, columns = evaluators (artefact-level checks in the first column), as the
-    terminal summary lays them out."""
-    evs = [e.name for e in a.evaluators] or ["artefact"]
-    rows: List[List[Any]] = []
-    for c in a.checks:
-        rows.append([c.name, _status(c.status)] + ["" for _ in evs[1:]] + [c.summary])
-    order: List[str] = []
-    for e in a.evaluators:
-        for c in e.checks:
-            if c.name not in order:
-                order.append(c.name)
-    for name in order:
-        per = [next((c for c in e.checks if c.name == name), None) for e in a.evaluators]
-        shown = next((c for c in per if c is not None and c.status == "fail"),
-                     next((c for c in per if c is not None), None))
-        rows.append([name] + [_status(c.status) if c is not None else "-" for c in per]
-                    + [shown.summary if shown is not None else ""])
-    return ["check"] + evs + ["detail"], rows
+    """The terminal summary's checks table (report.checks_table); an artefact that was not
+    opened has no evaluator, and its checks show under "artefact"."""
+    header, rows = report_checks_table(a)
+    if not a.evaluators:
+        header = [header[0], "artefact", header[-1]]
+    return header, rows
 
 
 def failure_rows(a: ArtefactReport) -> List[List[str]]:
@@ -449,10 +438,6 @@ def _rows_line(rows: Dict[str, Any]) -> str:
 
 def _colour(k: int) -> str:
     return EVALUATOR_COLOURS[k % len(EVALUATOR_COLOURS)]
-
-
-def _status(status: str) -> str:
-    return {"pass": "ok", "fail": "FAIL", "skip": "skip"}.get(status, status)
 
 
 def _short(name: Any, n: int = 22) -> str:

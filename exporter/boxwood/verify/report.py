@@ -11,7 +11,7 @@ import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Dict, List, Optional, Union
+from typing import Any, Dict, List, Optional, Tuple, Union
 
 REPORT_NAME = "boxwood.verify-report"
 REPORT_VERSION = 1
@@ -168,20 +168,8 @@ class VerifyResult:
         lines = [head]
         for a in self.artefacts:
             evs = [e.name for e in a.evaluators]
-            table = [["check"] + evs + ["detail"]]
-            for c in a.checks:
-                table.append([c.name, _status(c.status)] + ["" for _ in evs[1:]] + [c.summary])
-            order: List[str] = []
-            for e in a.evaluators:
-                for c in e.checks:
-                    if c.name not in order:
-                        order.append(c.name)
-            for name in order:
-                per = [next((c for c in e.checks if c.name == name), None) for e in a.evaluators]
-                shown = next((c for c in per if c is not None and c.status == "fail"),
-                             next((c for c in per if c is not None), None))
-                table.append([name] + [_status(c.status) if c is not None else "-" for c in per]
-                             + [shown.summary if shown is not None else ""])
+            header, rows = checks_table(a)
+            table = [header] + rows
             w = [max(len(r[i]) for r in table) for i in range(len(evs) + 1)]
             lines.append("")
             lines.append("%s (%s%s)" % (Path(a.path).name, a.format or "artefact",
@@ -326,3 +314,25 @@ def _write(path: Union[str, Path], text: str) -> None:
     tmp = path.with_name(path.name + ".partial")
     tmp.write_text(text, encoding="utf-8")
     tmp.replace(path)
+
+
+def checks_table(a: "ArtefactReport") -> Tuple[List[str], List[List[Any]]]:
+    """(header, rows) of an artefact's checks: rows = checks, columns = evaluators
+    (artefact-level checks in the first evaluator's column), then the detail of the first
+    failing evaluator, else the first one's. The terminal summary and the HTML page show it."""
+    evs = [e.name for e in a.evaluators]
+    rows: List[List[Any]] = []
+    for c in a.checks:
+        rows.append([c.name, _status(c.status)] + ["" for _ in evs[1:]] + [c.summary])
+    order: List[str] = []
+    for e in a.evaluators:
+        for c in e.checks:
+            if c.name not in order:
+                order.append(c.name)
+    for name in order:
+        per = [next((c for c in e.checks if c.name == name), None) for e in a.evaluators]
+        shown = next((c for c in per if c is not None and c.status == "fail"),
+                     next((c for c in per if c is not None), None))
+        rows.append([name] + [_status(c.status) if c is not None else "-" for c in per]
+                    + [shown.summary if shown is not None else ""])
+    return ["check"] + evs + ["detail"], rows
