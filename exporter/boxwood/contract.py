@@ -16,6 +16,12 @@ evaluator promises. Written once here for the workstation side.
   classifier with one raw output by its ``binary_rule``; an outlier detector -1 where
   its decision value is below 0, else 1.
 
+A calibrated classifier (``Ensemble.calibration``, scikit-learn's ``CalibratedClassifierCV``)
+has no decision function: its exact values are every fold's own exact values side by side
+(fold-major), its transformed outputs the calibrated probabilities of all classes
+(:func:`calibrated_probabilities`) and its label the class of the largest probability
+(first of equal maxima), as ``CalibratedClassifierCV.predict`` does.
+
 The device side keeps two standalone copies of this contract, because it cannot import
 the workstation: ``boxwood_runtime.scorer`` (pure Python, one record) and
 ``boxwood_runtime.batch`` (numpy). tests/test_contract.py holds all three together on
@@ -109,32 +115,47 @@ class OutputContract:
         self.classes = list(ensemble.classes) if ensemble.classes is not None else None
         self.binary_rule = ensemble.binary_rule
         self.softmax_sum = ensemble.softmax_sum
+        self.calibration = ensemble.calibration
+        self.fold_outputs = ensemble.fold_outputs
 
     # -- widths --------------------------------------------------------------------
     @property
     def n_exact(self) -> int:
         """Exact values per row."""
+        if self.calibration is not None:
+            per = 1 if (self.post_transform == "samme" and self.fold_outputs == 2) else self.fold_outputs
+            return per * len(self.calibration["folds"])
         return 1 if (self.post_transform == "samme" and self.n_outputs == 2) else self.n_outputs
 
     @property
     def n_transformed(self) -> int:
         """Transformed outputs per row."""
+        if self.calibration is not None:
+            return len(self.classes)
         return self.n_outputs
 
     @property
     def one_score_binary(self) -> bool:
         """A binary classifier with one raw output (its probability column is the positive class)."""
+        if self.calibration is not None:
+            return False  # calibrated: the probabilities of all classes
         return self.task == "classification" and self.post_transform not in PER_CLASS_TRANSFORMS
 
     # -- values --------------------------------------------------------------------
     def exact_values(self, raw: np.ndarray) -> np.ndarray:
         raw = _matrix(raw)
+        if self.calibration is not None:
+            return calibrated_exact_values(self.calibration, self.post_transform, raw)
         if self.post_transform == "samme":
             return samme_decision(raw, self.params["weight_total"])
         return raw
 
     def decision_values(self, raw: np.ndarray) -> np.ndarray:
+        """Decision values; a calibrated classifier has none, its labels come from the
+        calibrated probabilities, which this returns for it."""
         raw = _matrix(raw)
+        if self.calibration is not None:
+            return self.transformed(raw)
         if self.post_transform == "samme":
             return samme_decision(raw, self.params["weight_total"])
         if self.post_transform == "isolation":
@@ -142,6 +163,9 @@ class OutputContract:
         return raw
 
     def transformed(self, raw: np.ndarray) -> np.ndarray:
+        if self.calibration is not None:
+            return calibrated_probabilities(self.calibration, self.post_transform, self.softmax_sum,
+                                            _matrix(raw), len(self.classes))
         return transform(self.post_transform, _matrix(raw), self.params, self.softmax_sum)
 
     def positive_class(self, probabilities: np.ndarray) -> np.ndarray:
@@ -155,6 +179,8 @@ class OutputContract:
         raw = _matrix(raw)
         if self.task == "outlier_detection":  # scikit-learn: -1 where the decision is < 0
             return (self.decision_values(raw)[:, 0] >= 0.0).astype(np.intp)
+        if self.calibration is not None:
+            return np.argmax(self.transformed(raw), axis=1)  # the first of equal maxima
         if raw.shape[1] == 1:
             positive = raw[:, 0] > 0.0 if self.binary_rule == "raw_gt_0" else raw[:, 0] >= 0.0
             return positive.astype(np.intp)
@@ -227,3 +253,109 @@ def transform(name: str, raw: np.ndarray, params: Optional[Dict[str, float]] = N
             q = raw / den if den != 0.0 else np.ones_like(raw)
             return -(2 ** (-q))
     raise ValueError("unknown post_transform %r" % (name,))
+
+
+# ----------------------------------------------------------------------------- calibration
+# CalibratedClassifierCV (scikit-learn 1.9, sklearn/calibration.py), reproduced operation by
+# operation in float64; docs/calibration.md walks through it.
+CALIBRATION_ONE_SLACK = 1e-5  # probabilities in (1, 1 + 1e-5] become 1.0 (_CalibratedClassifier)
+
+
+def isotonic_interpolate(t: np.ndarray, x: Sequence[float], y: Sequence[float]) -> np.ndarray:
+    """IsotonicRegression(out_of_bounds="clip").predict: ``t`` clipped to [x[0], x[-1]], then
+    scipy's interp1d(kind="linear"), which for float64 knots hands over to numpy.interp:
+    with x[j] <= t < x[j + 1], the knot's y[j] when t == x[j] (and y[-1] at the last knot),
+    else slope * (t - x[j]) + y[j] with slope = (y[j+1] - y[j]) / (x[j+1] - x[j]); when that
+    is NaN, slope * (t - x[j+1]) + y[j+1], and y[j] if still NaN and y[j] == y[j+1]
+    (numpy's arr_interp). One knot: the constant y[0] (IsotonicRegression._build_f)."""
+    t = np.asarray(t, dtype=np.float64)
+    xs = np.asarray(x, dtype=np.float64)
+    ys = np.asarray(y, dtype=np.float64)
+    n = len(xs)
+    if n == 1:
+        return np.full(t.shape, ys[0])
+    t = np.clip(t, xs[0], xs[-1])
+    j = np.clip(np.searchsorted(xs, t, side="right") - 1, 0, n - 1)
+    out = ys[j].copy()
+    inner = (j < n - 1) & (xs[j] != t) & ~np.isnan(t)
+    jj, tt = j[inner], t[inner]
+    with np.errstate(all="ignore"):
+        slope = (ys[jj + 1] - ys[jj]) / (xs[jj + 1] - xs[jj])
+        v = slope * (tt - xs[jj]) + ys[jj]
+        again = np.isnan(v)
+        if again.any():
+            w = slope[again] * (tt[again] - xs[jj[again] + 1]) + ys[jj[again] + 1]
+            flat = np.isnan(w) & (ys[jj[again]] == ys[jj[again] + 1])
+            w[flat] = ys[jj[again]][flat]
+            v[again] = w
+    out[inner] = v
+    out[np.isnan(t)] = np.nan
+    return out
+
+
+def sigmoid_calibrate(t: np.ndarray, a: float, b: float) -> np.ndarray:
+    """_SigmoidCalibration.predict: expit(-(a * t + b)), expit(z) = 1 / (1 + exp(-z))."""
+    z = -(a * np.asarray(t, dtype=np.float64) + b)
+    with np.errstate(over="ignore"):
+        return 1.0 / (1.0 + np.exp(-z))
+
+
+def apply_calibrator(cal: Dict[str, Any], t: np.ndarray) -> np.ndarray:
+    if cal["method"] == "isotonic":
+        return isotonic_interpolate(t, cal["x"], cal["y"])
+    return sigmoid_calibrate(t, cal["a"], cal["b"])
+
+
+def _fold_slices(calibration: Dict[str, Any], raw: np.ndarray):
+    folds = calibration["folds"]
+    m = raw.shape[1] // len(folds)
+    for f, fold in enumerate(folds):
+        yield fold, raw[:, f * m:(f + 1) * m]
+
+
+def calibrated_exact_values(calibration: Dict[str, Any], post_transform: str, raw: np.ndarray) -> np.ndarray:
+    """Every fold's exact values (its raw scores; AdaBoost's decision values), fold-major."""
+    parts = []
+    for fold, r in _fold_slices(calibration, _matrix(raw)):
+        if post_transform == "samme":
+            parts.append(samme_decision(r, fold["post_transform_params"]["weight_total"]))
+        else:
+            parts.append(r)
+    return np.concatenate(parts, axis=1)
+
+
+def calibration_response(calibration: Dict[str, Any], post_transform: str, softmax_sum: str,
+                         fold: Dict[str, Any], raw: np.ndarray) -> np.ndarray:
+    """One fold's response from its raw scores: its decision values (decision_function) or its
+    probabilities (predict_proba); for two classes the positive class's column only."""
+    params = fold["post_transform_params"]
+    if calibration["response"] == "decision":
+        r = samme_decision(raw, params["weight_total"]) if post_transform == "samme" else raw
+    else:
+        r = transform(post_transform, raw, params, softmax_sum)
+    return r[:, -1:] if calibration["normalisation"] == "complement" else r
+
+
+def calibrated_probabilities(calibration: Dict[str, Any], post_transform: str, softmax_sum: str,
+                             raw: np.ndarray, n_classes: int) -> np.ndarray:
+    """CalibratedClassifierCV.predict_proba from the folds' raw scores: per fold, each class's
+    calibrator on its response column (two classes: column 1, and column 0 = 1.0 - p1; more:
+    divided by the row sum, numpy's pairwise sum, 1 / n_classes where the sum is 0), values in
+    (1, 1 + 1e-5] set to 1.0; the folds' probabilities added in fold order from 0.0 and divided
+    by the number of folds."""
+    raw = _matrix(raw)
+    total = np.zeros((raw.shape[0], n_classes))
+    for fold, r in _fold_slices(calibration, raw):
+        resp = calibration_response(calibration, post_transform, softmax_sum, fold, r)
+        proba = np.zeros((raw.shape[0], n_classes))
+        for c, cal in enumerate(fold["calibrators"]):
+            proba[:, c + 1 if n_classes == 2 else c] = apply_calibrator(cal, resp[:, c])
+        if n_classes == 2:
+            proba[:, 0] = 1.0 - proba[:, 1]
+        else:
+            den = np.ascontiguousarray(proba).sum(axis=1)[:, None]
+            proba = np.divide(proba, den, out=np.full_like(proba, 1 / n_classes), where=den != 0)
+        proba[(1.0 < proba) & (proba <= 1.0 + CALIBRATION_ONE_SLACK)] = 1.0
+        total += proba
+    total /= len(calibration["folds"])
+    return total

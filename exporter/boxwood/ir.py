@@ -15,7 +15,13 @@ stated as data instead of being left to whoever reads the model:
 * the raw score of output ``k`` is ``base_values[k]`` plus the leaf values of the
   trees whose ``output == k``, added one by one in tree order in float64
   (``combine == "sum"``), or their mean (``combine == "mean"``);
-* the post-transform maps raw scores to the user-facing output.
+* the post-transform maps raw scores to the user-facing output;
+* a calibrated classifier (``Ensemble.calibration``, scikit-learn's
+  ``CalibratedClassifierCV``) holds several folds: fold ``f``'s raw outputs are the
+  contiguous slice ``f * m .. f * m + m - 1`` (``m = fold_outputs``), each fold's raw
+  scores give its response (decision values or probabilities, by the post-transform),
+  per-class calibrators map the response to probabilities, and the folds' probabilities
+  are averaged (docs/calibration.md; the arithmetic is ``contract.calibrated_probabilities``).
 """
 from __future__ import annotations
 
@@ -43,6 +49,13 @@ PER_CLASS_TRANSFORMS = ("identity", "softmax", "samme")
 SOFTMAX_SUMS = ("sequential", "pairwise")
 # How a binary classifier turns its raw score into the positive class.
 BINARY_RULES = ("raw_gt_0", "raw_ge_0")
+# Calibration (CalibratedClassifierCV): what feeds the calibrators ("decision": the fold
+# classifier's decision_function; "probability": its predict_proba), the calibrator kinds,
+# and how the per-class probabilities are completed ("complement": two classes, p0 = 1 - p1;
+# "row_sum": divided by their row sum, numpy's pairwise sum, 1 / n_classes where it is 0).
+CALIBRATION_RESPONSES = ("decision", "probability")
+CALIBRATION_METHODS = ("isotonic", "sigmoid")
+CALIBRATION_NORMALISATIONS = ("complement", "row_sum")
 
 LEAF = -1
 
@@ -158,6 +171,11 @@ class Ensemble:
     # Raw record fields, when the ensemble carries preprocessing (a scikit-learn Pipeline);
     # then every feature has a ``source``. None: records hold the features themselves.
     fields: Optional[List[str]] = None
+    # CalibratedClassifierCV: {"response": one of CALIBRATION_RESPONSES, "normalisation": one
+    # of CALIBRATION_NORMALISATIONS, "folds": [{"post_transform_params": {...}, "calibrators":
+    # [{"method": "isotonic", "x": [...], "y": [...]} | {"method": "sigmoid", "a": a, "b": b},
+    # one per class (one for two classes: the positive class)]}, ...]}. None: not calibrated.
+    calibration: Optional[Dict[str, Any]] = None
     provenance: Dict[str, Any] = field(default_factory=dict)
     reference: Optional["Reference"] = None
 
@@ -168,6 +186,16 @@ class Ensemble:
     @property
     def n_nodes(self) -> int:
         return sum(t.n_nodes for t in self.trees)
+
+    @property
+    def n_folds(self) -> int:
+        """Calibrated folds (1 for an ensemble without calibration)."""
+        return len(self.calibration["folds"]) if self.calibration else 1
+
+    @property
+    def fold_outputs(self) -> int:
+        """Raw outputs per fold (all of them without calibration)."""
+        return self.n_outputs // self.n_folds if self.calibration else self.n_outputs
 
     def max_depth(self) -> int:
         return max((t.depth() for t in self.trees), default=0)
@@ -193,6 +221,9 @@ class Ensemble:
         k = self.n_outputs
         if k < 1:
             raise ModelError("the ensemble has no outputs (no base values)")
+        if self.calibration is not None:
+            _check_calibration(self)
+            k = self.fold_outputs  # the rules below hold per fold
         if not all(isinstance(b, float) and math.isfinite(b) for b in self.base_values):
             raise ModelError("base values must be finite floats: %r" % self.base_values)
         wanted = TRANSFORM_PARAMS.get(self.post_transform, ())
@@ -223,11 +254,73 @@ class Ensemble:
             raise ModelError("binary_rule belongs to binary classifiers with one raw output only")
         if self.post_transform == "softmax" and k < 2:
             raise ModelError("softmax needs two or more outputs")
-        if self.output_names and len(self.output_names) != k:
-            raise ModelError("%d output names for %d outputs" % (len(self.output_names), k))
+        if self.output_names and len(self.output_names) != self.n_outputs:
+            raise ModelError("%d output names for %d outputs" % (len(self.output_names), self.n_outputs))
         for index, tree in enumerate(self.trees):
-            _check_tree(tree, index, self.features, k)
+            _check_tree(tree, index, self.features, self.n_outputs)
         return self
+
+
+def _finite(v: Any) -> bool:
+    return isinstance(v, float) and math.isfinite(v)
+
+
+def _check_calibration(e: "Ensemble") -> None:
+    """The rules of ``Ensemble.calibration`` (see the field's comment)."""
+    cal = e.calibration
+    if not isinstance(cal, dict) or set(cal) != {"response", "normalisation", "folds"}:
+        raise ModelError("calibration needs exactly the keys response, normalisation, folds; got %r"
+                         % (sorted(cal) if isinstance(cal, dict) else cal,))
+    if e.task != "classification" or not e.classes:
+        raise ModelError("calibration belongs to classifiers only")
+    _one_of("calibration.response", cal["response"], CALIBRATION_RESPONSES)
+    want = "complement" if len(e.classes) == 2 else "row_sum"
+    if cal["normalisation"] != want:
+        raise ModelError("calibration.normalisation is %r; %d classes need %r"
+                         % (cal["normalisation"], len(e.classes), want))
+    folds = cal["folds"]
+    if not isinstance(folds, list) or not folds:
+        raise ModelError("calibration lists no folds")
+    if e.n_outputs % len(folds):
+        raise ModelError("%d raw outputs do not split into %d folds" % (e.n_outputs, len(folds)))
+    per = 1 if len(e.classes) == 2 else len(e.classes)
+    wanted = TRANSFORM_PARAMS.get(e.post_transform, ())
+    for f, fold in enumerate(folds):
+        where = "calibration.folds[%d]" % f
+        if not isinstance(fold, dict) or set(fold) != {"post_transform_params", "calibrators"}:
+            raise ModelError("%s needs exactly the keys post_transform_params, calibrators" % where)
+        params = fold["post_transform_params"]
+        if not isinstance(params, dict) or sorted(params) != sorted(wanted) or not all(
+                _finite(v) for v in params.values()):
+            raise ModelError("%s.post_transform_params: %r takes the finite float parameters %s"
+                             % (where, e.post_transform, list(wanted)))
+        cals = fold["calibrators"]
+        if not isinstance(cals, list) or len(cals) != per:
+            raise ModelError("%s: %d classes need %d calibrators" % (where, len(e.classes), per))
+        for c, cal_c in enumerate(cals):
+            _check_calibrator(cal_c, "%s.calibrators[%d]" % (where, c))
+    if dict(e.post_transform_params) != dict(folds[0]["post_transform_params"]):
+        raise ModelError("post_transform_params must be fold 0's (calibration.folds[0])")
+
+
+def _check_calibrator(cal: Any, where: str) -> None:
+    method = cal.get("method") if isinstance(cal, dict) else None
+    if method == "sigmoid":
+        if set(cal) != {"method", "a", "b"} or not (_finite(cal["a"]) and _finite(cal["b"])):
+            raise ModelError("%s: a sigmoid calibrator has the finite floats a and b" % where)
+    elif method == "isotonic":
+        x, y = cal.get("x"), cal.get("y")
+        if (set(cal) != {"method", "x", "y"} or not isinstance(x, list) or not isinstance(y, list)
+                or not x or len(x) != len(y) or not all(_finite(v) for v in x + y)):
+            raise ModelError("%s: an isotonic calibrator has equally long, non-empty lists x and y of "
+                             "finite floats" % where)
+        bad = next((i for i in range(1, len(x)) if not x[i - 1] < x[i]), None)
+        if bad is not None:
+            raise ModelError("%s: knot x[%d] = %r does not follow x[%d] = %r (strictly increasing)"
+                             % (where, bad, x[bad], bad - 1, x[bad - 1]))
+    else:
+        raise ModelError("%s: method is %r; expected one of %s" % (where, method, ", ".join(
+            map(repr, CALIBRATION_METHODS))))
 
 
 def _check_source(f: Feature, fields: Optional[List[str]]) -> None:

@@ -10,11 +10,11 @@ from __future__ import annotations
 from typing import Any
 
 from ..ir import Ensemble
-from . import boosting, forests, pipeline
+from . import boosting, calibration, forests, pipeline
 from .common import UnsupportedModel
 from .loading import PICKLE_WARNING, ModelFileError, load_model_file
 
-READERS = (boosting.read, forests.read, pipeline.read)
+READERS = (boosting.read, forests.read, pipeline.read, calibration.read)
 
 SUPPORTED = (
     "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
@@ -28,6 +28,8 @@ SUPPORTED = (
     "sklearn.ensemble.IsolationForest (score_samples, decision_function, predict)",
     "sklearn.ensemble.AdaBoostClassifier (SAMME, decision-tree base learners)",
     "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(pipeline.SUPPORTED_STEPS),
+    "sklearn.calibration.CalibratedClassifierCV (isotonic, sigmoid; cv folds, ensemble=False, FrozenEstimator) "
+    "over one of the classifiers or pipelines above",
 )
 
 
