@@ -32,7 +32,7 @@ except ImportError:  # MicroPython ports built without array: plain lists
     _NODE_ARRAYS = (list,)
 
 FORMAT_NAME = "boxwood.tree-ensemble"
-FORMAT_VERSIONS = (1, 2)  # 1: text trimmed, None = NaN; 2: text read as pandas does
+FORMAT_VERSIONS = (1, 2, 3)  # 1: text trimmed, None = NaN; 2: text read as pandas does; 3: calibration
 SCORER_VERSION = "0.1.0"
 DIGEST_KEY = "boxwood_digest"
 _DIGEST_PREFIX = b'{"' + DIGEST_KEY.encode() + b'":"sha256:'
@@ -706,6 +706,10 @@ class Model:
         self.softmax_sum = outputs.get("softmax_sum", "sequential")
         _need(self.softmax_sum in ("sequential", "pairwise"), "outputs.softmax_sum must be \"sequential\" or "
               "\"pairwise\"")
+        self.calibration = None
+        if "calibration" in outputs:
+            _need(self.format_version >= 3, "outputs.calibration needs format_version 3")
+            self.calibration = _read_calibration(outputs["calibration"], self, limits)
         if self.task == "classification":
             _need(isinstance(self.classes, list) and len(self.classes) >= 2, "a classifier needs class labels")
             _need(self.post_transform in ("identity", "logistic", "logistic_double", "softmax", "samme"),
@@ -732,6 +736,8 @@ class Model:
             _need(k == 1, "an outlier detector has one raw output")
         if self.task == "classification":
             want = 1 if len(self.classes) == 2 and self.post_transform not in _PER_CLASS else len(self.classes)
+            if self.calibration is not None:  # fold-major: every fold's raw outputs in turn
+                want *= len(self.calibration["folds"])
             _need(k == want, "%d classes need %d raw outputs, not %d" % (len(self.classes), want, k))
         _need(self.post_transform != "softmax" or k >= 2, "softmax needs two or more outputs")
         trees = _get(ens, "trees", list, "ensemble")
@@ -1172,6 +1178,8 @@ class Model:
         """False for averaged trees and forests and for single trees, which have no
         decision_function in scikit-learn: probability-averaging classifiers, and
         regressors made of one tree per output with zero base values."""
+        if self.calibration is not None:  # CalibratedClassifierCV has none
+            return False
         if self.task == "outlier_detection" or self.post_transform not in ("identity",):
             return True
         if self.combine == "mean" or self.task == "classification":
@@ -1196,11 +1204,18 @@ class Model:
         return self._apply(records, self.proba_from_raw)
 
     def transform_raw(self, raw):
-        """Apply the post-transform to one list of raw scores."""
+        """Apply the post-transform to one list of raw scores (a calibrated classifier: its
+        calibrated probabilities of all classes)."""
+        if self.calibration is not None:
+            return calibrated_probabilities(self.calibration, self.post_transform, self.softmax_sum, raw,
+                                            len(self.classes))
         return transform(self.post_transform, raw, self.post_transform_params, self.softmax_sum)
 
     def decision_values(self, raw):
-        """The decision values (always a list) for one list of raw scores."""
+        """The decision values (always a list) for one list of raw scores (a calibrated
+        classifier has none: its calibrated probabilities, which decide its label)."""
+        if self.calibration is not None:
+            return self.transform_raw(raw)
         if self.post_transform == "samme":
             return samme_decision(raw, self.post_transform_params["weight_total"])
         if self.post_transform == "isolation":
@@ -1210,7 +1225,10 @@ class Model:
     def exact_values(self, raw):
         """The values a device must reproduce bit for bit (the self-check's ``raw``): the
         raw scores, except for AdaBoost, whose raw vote sums scikit-learn never shows
-        (there: its decision values, formed by exact divisions and one addition)."""
+        (there: its decision values, formed by exact divisions and one addition); for a
+        calibrated classifier, every fold's own exact values, fold by fold."""
+        if self.calibration is not None:
+            return calibrated_exact_values(self.calibration, self.post_transform, raw)
         if self.post_transform == "samme":
             return samme_decision(raw, self.post_transform_params["weight_total"])
         return list(raw)
@@ -1234,12 +1252,19 @@ class Model:
     def proba_from_raw(self, raw):
         """Class probabilities (all classes, in ``classes`` order) for one list of raw scores."""
         p = self.transform_raw(raw)
-        return [1.0 - p[0], p[0]] if self.n_outputs == 1 else p
+        return [1.0 - p[0], p[0]] if len(p) == 1 else p
 
     def class_index(self, raw):
         """Index into ``classes`` of the predicted class for raw scores ``raw``."""
         if self.task == "outlier_detection":  # scikit-learn: -1 where decision < 0
             return 0 if self.decision_values(raw)[0] < 0.0 else 1
+        if self.calibration is not None:  # the first of the largest probabilities
+            values = self.transform_raw(raw)
+            best = 0
+            for j in range(1, len(values)):
+                if values[j] > values[best]:
+                    best = j
+            return best
         if self.n_outputs == 1:
             positive = raw[0] > 0.0 if self.binary_rule == "raw_gt_0" else raw[0] >= 0.0
             return 1 if positive else 0
@@ -1428,6 +1453,140 @@ def transform(name, raw, params=None, softmax_sum="sequential"):
         q = raw[0] / den if den != 0.0 else 1.0
         return [-(2.0 ** -q)]
     raise ValueError("unknown post_transform %r" % (name,))
+
+
+# ----------------------------------------------------------------------------- calibration
+# scikit-learn's CalibratedClassifierCV (its own copy of boxwood.contract's calibration part;
+# docs/calibration.md): per fold, the response of the fold's classifier, one calibrator per
+# class, the binary complement or the division by the row sum, then the mean of the folds.
+_CALIBRATION_KEYS = {"isotonic": ("method", "x", "y"), "sigmoid": ("a", "b", "method")}
+
+
+def _read_calibration(cal, model, limits):
+    """Validate ``outputs.calibration``; return it with numbers as floats."""
+    where = "outputs.calibration"
+    _need(model.task == "classification", "%s belongs to classifiers only" % where)
+    response = _get(cal, "response", str, where)
+    _need(response in ("decision", "probability"), "%s.response must be \"decision\" or \"probability\""
+          % where)
+    n = len(model.classes)
+    norm = _get(cal, "normalisation", str, where)
+    _need(norm == ("complement" if n == 2 else "row_sum"), "%s.normalisation %r does not fit %d classes"
+          % (where, norm, n))
+    folds = _get(cal, "folds", list, where)
+    _need(0 < len(folds) <= limits["max_outputs"], "%s.folds: count out of bounds" % where)
+    per = 1 if n == 2 else n
+    out = []
+    for f, fold in enumerate(folds):
+        at = "%s.folds[%d]" % (where, f)
+        params = _get(fold, "post_transform_params", dict, at)
+        _need(sorted(params) == sorted(_TRANSFORM_PARAMS[model.post_transform]),
+              "%s.post_transform_params must hold %s" % (at, list(_TRANSFORM_PARAMS[model.post_transform])))
+        params = dict((k, _number(v, "%s.post_transform_params.%s" % (at, k))) for k, v in params.items())
+        cals = _get(fold, "calibrators", list, at)
+        _need(len(cals) == per, "%s.calibrators: %d classes need %d calibrators" % (at, n, per))
+        read = []
+        for c, one in enumerate(cals):
+            ct = "%s.calibrators[%d]" % (at, c)
+            method = _get(one, "method", str, ct)
+            _need(method in _CALIBRATION_KEYS and sorted(one) == list(_CALIBRATION_KEYS[method]),
+                  "%s must be {\"method\": \"isotonic\", \"x\", \"y\"} or {\"method\": \"sigmoid\", "
+                  "\"a\", \"b\"}" % ct)
+            if method == "sigmoid":
+                a, b = _number(one["a"], ct + ".a"), _number(one["b"], ct + ".b")
+                _need(a - a == 0.0 and b - b == 0.0, "%s: a and b must be finite" % ct)
+                read.append(("sigmoid", a, b))
+                continue
+            xs, ys = _get(one, "x", list, ct), _get(one, "y", list, ct)
+            _need(0 < len(xs) == len(ys) <= limits["max_nodes_per_tree"], "%s: x and y must be equally long "
+                  "and hold 1 to max_nodes_per_tree knots" % ct)
+            xs = [_number(v, "%s.x[%d]" % (ct, i)) for i, v in enumerate(xs)]
+            ys = [_number(v, "%s.y[%d]" % (ct, i)) for i, v in enumerate(ys)]
+            for i in range(len(xs)):
+                _need(xs[i] - xs[i] == 0.0 and ys[i] - ys[i] == 0.0, "%s: knot %d is not finite" % (ct, i))
+                _need(i == 0 or xs[i - 1] < xs[i], "%s.x[%d] does not increase strictly" % (ct, i))
+            read.append(("isotonic", xs, ys))
+        out.append((params, read))
+    return {"response": response, "normalisation": norm, "folds": out}
+
+
+def isotonic_interpolate(t, xs, ys):
+    """IsotonicRegression(out_of_bounds="clip").predict for one value: clipped to the knots'
+    range, then numpy.interp's formula (scipy's interp1d hands float64 knots to it): with
+    xs[j] <= t < xs[j+1], ys[j] when t == xs[j], else slope * (t - xs[j]) + ys[j] where
+    slope = (ys[j+1] - ys[j]) / (xs[j+1] - xs[j]) (NaN: from the right knot, then ys[j] if
+    the two are equal); the last knot's ys; one knot: ys[0]."""
+    n = len(xs)
+    if n == 1:
+        return ys[0]
+    if t != t:
+        return t
+    if t <= xs[0]:
+        return ys[0]
+    if t >= xs[n - 1]:
+        return ys[n - 1]
+    lo, hi = 0, n - 1  # xs[lo] <= t < xs[hi] (no bisect module in MicroPython)
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if xs[mid] <= t:
+            lo = mid
+        else:
+            hi = mid
+    if xs[lo] == t:
+        return ys[lo]
+    slope = (ys[lo + 1] - ys[lo]) / (xs[lo + 1] - xs[lo])
+    v = slope * (t - xs[lo]) + ys[lo]
+    if v != v:
+        v = slope * (t - xs[lo + 1]) + ys[lo + 1]
+        if v != v and ys[lo] == ys[lo + 1]:
+            v = ys[lo]
+    return v
+
+
+def _calibrate(cal, t):
+    if cal[0] == "isotonic":
+        return isotonic_interpolate(t, cal[1], cal[2])
+    return _logistic(-(cal[1] * t + cal[2]))  # expit(-(a * t + b))
+
+
+def calibrated_exact_values(calibration, post_transform, raw):
+    """Every fold's exact values side by side: its raw scores (AdaBoost: its decision values)."""
+    folds = calibration["folds"]
+    m = len(raw) // len(folds)
+    out = []
+    for f in range(len(folds)):
+        r = raw[f * m:(f + 1) * m]
+        out.extend(samme_decision(r, folds[f][0]["weight_total"]) if post_transform == "samme" else r)
+    return out
+
+
+def calibrated_probabilities(calibration, post_transform, softmax_sum, raw, n_classes):
+    """CalibratedClassifierCV.predict_proba for one row of the folds' raw scores."""
+    folds = calibration["folds"]
+    m = len(raw) // len(folds)
+    total = [0.0] * n_classes
+    for f in range(len(folds)):
+        params, cals = folds[f]
+        r = raw[f * m:(f + 1) * m]
+        if calibration["response"] == "decision":
+            resp = samme_decision(r, params["weight_total"]) if post_transform == "samme" else list(r)
+        else:
+            resp = transform(post_transform, r, params, softmax_sum)
+        if n_classes == 2:
+            resp = resp[-1:]
+        p = [0.0] * n_classes
+        for c in range(len(cals)):
+            p[c + 1 if n_classes == 2 else c] = _calibrate(cals[c], resp[c])
+        if n_classes == 2:
+            p[0] = 1.0 - p[1]
+        else:
+            s = pairwise_sum(p)  # numpy's row sum
+            p = [v / s for v in p] if s != 0.0 else [1 / n_classes] * n_classes
+        for j in range(n_classes):
+            if 1.0 < p[j] <= 1.0 + 1e-5:
+                p[j] = 1.0
+            total[j] += p[j]
+    return [v / len(folds) for v in total]
 
 
 def ulp_distance(a, b):

@@ -58,6 +58,12 @@ class SourceModel:
         ``decision_function``, and an isolation forest's sum of path lengths (computed
         with scikit-learn's own trees, as its ``score_samples`` does before the power)."""
         X = self.matrix(rows)
+        if self.ensemble.calibration is not None:
+            return calibrated_raw(self.model, self.ensemble, X, len(rows))
+        return self.raw_from_matrix(X, len(rows))
+
+    def raw_from_matrix(self, X: Any, n: int) -> np.ndarray:
+        """:meth:`raw` for the estimator's input ``X`` of ``n`` rows."""
         m = self.model
         if self.ensemble.task == "outlier_detection":
             from .forests import isolation_path_sums
@@ -71,7 +77,7 @@ class SourceModel:
             out = m._raw_predict(X)  # regressors with a log link predict exp(raw)
         else:
             out = m.predict(X)
-        return np.asarray(out, dtype=np.float64).reshape(len(rows), -1)
+        return np.asarray(out, dtype=np.float64).reshape(n, -1)
 
     def transformed(self, rows: Sequence[Sequence[Any]]) -> np.ndarray:
         """Post-transformed outputs, shape (n_rows, n_outputs): the prediction, the class
@@ -80,12 +86,37 @@ class SourceModel:
         X = self.matrix(rows)
         if self.ensemble.task == "outlier_detection":
             return np.asarray(self.model.score_samples(X), dtype=np.float64).reshape(len(rows), -1)
+        if self.ensemble.calibration is not None:  # CalibratedClassifierCV: all classes
+            return np.asarray(self.model.predict_proba(X), dtype=np.float64).reshape(len(rows), -1)
         if self.ensemble.task == "classification":
             return OutputContract(self.ensemble).positive_class(self.model.predict_proba(X))
         return np.asarray(self.model.predict(X), dtype=np.float64).reshape(len(rows), -1)
 
     def predict(self, rows: Sequence[Sequence[Any]]) -> List[Any]:
         return list(self.model.predict(self.matrix(rows)))
+
+
+def calibrated_raw(model: Any, ensemble: Ensemble, X: Any, n: int) -> np.ndarray:
+    """A CalibratedClassifierCV's exact values: each fold's classifier asked for its own
+    (decision_function of boosting and AdaBoost, predict_proba of trees and forests; the
+    FrozenEstimator of a prefit model unwrapped), fold after fold."""
+    parts = []
+    for cc in model.calibrated_classifiers_:
+        est = cc.estimator
+        if type(est).__name__ == "FrozenEstimator":
+            est = est.estimator
+        sub = SourceModel(est, _fold_view(ensemble))
+        parts.append(sub.raw_from_matrix(X, n))
+    return np.concatenate(parts, axis=1)
+
+
+def _fold_view(ensemble: Ensemble) -> Ensemble:
+    """An uncalibrated stand-in with one fold's outputs (for which method gives raw values)."""
+    import dataclasses
+
+    return dataclasses.replace(ensemble, calibration=None, trees=[],
+                               base_values=ensemble.base_values[:ensemble.fold_outputs],
+                               output_names=ensemble.output_names[:ensemble.fold_outputs])
 
 
 class SourceEvaluator(Evaluator):
@@ -104,6 +135,9 @@ class SourceEvaluator(Evaluator):
         # predictions through joblib; with n_jobs None or 1 that runs the trees one after
         # the other in order (the conformance suite sees bit-identical means), with more
         # jobs the order depends on the threads (from sklearn.ensemble._forest, stated).
+        if ensemble.calibration is not None:  # the first fold's classifier (all folds share its settings)
+            model = model.calibrated_classifiers_[0].estimator
+            model = getattr(model, "estimator", model) if type(model).__name__ == "FrozenEstimator" else model
         final = model.steps[-1][1] if hasattr(model, "steps") else model
         jobs = getattr(final, "n_jobs", None)
         self.summation_order = "tree" if ensemble.combine == "sum" or jobs in (None, 1) else "any"

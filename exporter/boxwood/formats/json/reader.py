@@ -66,7 +66,25 @@ def from_document(doc: Dict[str, Any]) -> Ensemble:
         post_transform_params={k: _num(v) for k, v in outputs.get("post_transform_params", {}).items()},
         provenance=doc.get("provenance", {}),
         reference=reference,
+        calibration=_calibration(outputs.get("calibration")),
     ).check()
+
+
+def _calibration(cal: Any) -> Any:
+    """``outputs.calibration`` (format version 3) as ``Ensemble.calibration``, or None."""
+    if cal is None:
+        return None
+    folds = []
+    for fold in cal["folds"]:
+        cals = []
+        for c in fold["calibrators"]:
+            if c["method"] == "isotonic":
+                cals.append({"method": "isotonic", "x": [_num(v) for v in c["x"]], "y": [_num(v) for v in c["y"]]})
+            else:
+                cals.append({"method": "sigmoid", "a": _num(c["a"]), "b": _num(c["b"])})
+        folds.append({"post_transform_params": {k: _num(v) for k, v in fold["post_transform_params"].items()},
+                      "calibrators": cals})
+    return {"response": cal["response"], "normalisation": cal["normalisation"], "folds": folds}
 
 
 def read_file(path: Union[str, Path, bytes]) -> Ensemble:

@@ -1,4 +1,5 @@
-"""Write the boxwood JSON artefact (format version 2).
+"""Write the boxwood JSON artefact (format version 2; 3 when it uses a feature that needs
+it, see :func:`needs_format_3`, so artefacts without one stay byte for byte as before).
 
 The layout is documented by schemas/tree-ensemble.schema.json and the page
 docs/artefact-format.md. The file is the canonical JSON of the document (keys
@@ -21,6 +22,29 @@ from boxwood_runtime.scorer import _DIGEST_PREFIX, FORMAT_NAME, artefact_bytes, 
 from ...ir import Ensemble
 
 FORMAT_VERSION = 2
+FORMAT_VERSION_3 = 3
+
+
+def needs_format_3(ensemble: Ensemble) -> bool:
+    """True when the artefact must say format_version 3 (older scorers then refuse it with
+    their "format_version ... is not one this scorer reads" message): it carries calibration
+    (``outputs.calibration``)."""
+    return ensemble.calibration is not None
+
+
+def _calibration(cal: Dict[str, Any]) -> Dict[str, Any]:
+    """``Ensemble.calibration`` as JSON (numbers as :func:`number` writes them)."""
+    folds = []
+    for fold in cal["folds"]:
+        cals = []
+        for c in fold["calibrators"]:
+            if c["method"] == "isotonic":
+                cals.append({"method": "isotonic", "x": [number(v) for v in c["x"]], "y": [number(v) for v in c["y"]]})
+            else:
+                cals.append({"method": "sigmoid", "a": number(c["a"]), "b": number(c["b"])})
+        folds.append({"post_transform_params": {k: number(v) for k, v in sorted(fold["post_transform_params"].items())},
+                      "calibrators": cals})
+    return {"response": cal["response"], "normalisation": cal["normalisation"], "folds": folds}
 
 
 def text_reading() -> Dict[str, Any]:
@@ -150,9 +174,11 @@ def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]
         outputs["softmax_sum"] = ensemble.softmax_sum
     if ensemble.post_transform_params:
         outputs["post_transform_params"] = {k: number(v) for k, v in sorted(ensemble.post_transform_params.items())}
+    if ensemble.calibration is not None:
+        outputs["calibration"] = _calibration(ensemble.calibration)
     doc: Dict[str, Any] = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
+        "format_version": FORMAT_VERSION_3 if needs_format_3(ensemble) else FORMAT_VERSION,
         "task": ensemble.task,
         "inputs": inputs,
         "outputs": outputs,
