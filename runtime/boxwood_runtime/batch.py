@@ -371,8 +371,11 @@ class BatchModel:
 
     # -- the public methods ----------------------------------------------------------
     def decision_values(self, raw):
-        """Decision values for raw scores (n, n_outputs), as the scorer's ``decision_values``."""
+        """Decision values for raw scores (n, n_outputs), as the scorer's ``decision_values``
+        (a calibrated classifier: its calibrated probabilities, which decide its label)."""
         m = self.model
+        if m.calibration is not None:
+            return self.transform_raw(raw)
         if m.post_transform == "samme":
             return samme_decision(raw, m.post_transform_params["weight_total"])
         if m.post_transform == "isolation":
@@ -381,8 +384,11 @@ class BatchModel:
 
     def exact_values(self, raw):
         """The values a device must reproduce bit for bit, as the scorer's ``exact_values``:
-        the raw scores, except AdaBoost's decision values."""
+        the raw scores, except AdaBoost's decision values (a calibrated classifier: every
+        fold's own, fold after fold)."""
         m = self.model
+        if m.calibration is not None:
+            return calibrated_exact_values(m.calibration, m.post_transform, raw)
         if m.post_transform == "samme":
             return samme_decision(raw, m.post_transform_params["weight_total"])
         return raw
@@ -390,6 +396,8 @@ class BatchModel:
     def transform_raw(self, raw):
         """The post-transformed outputs for raw scores (n, n_outputs), as the scorer's ``transform_raw``."""
         m = self.model
+        if m.calibration is not None:
+            return calibrated_probabilities(m.calibration, m.post_transform, m.softmax_sum, raw, len(m.classes))
         return transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
 
     def _run(self, records, finish):
@@ -422,6 +430,9 @@ class BatchModel:
 
     def decision_function(self, X):
         """Decision values (raw scores for boosted models): shape (n,) or (n, K)."""
+        if not self.model.has_decision_function:
+            raise TypeError("decision_function is not defined for this model (as in scikit-learn); use "
+                            "predict or predict_proba")
         d = self._run(X, self.decision_values)
         return d[:, 0] if d.shape[1] == 1 else d
 
@@ -449,6 +460,8 @@ class BatchModel:
             raise TypeError("predict_proba is for classifiers; this model does %s" % m.task)
 
         def finish(raw):
+            if m.calibration is not None:
+                return self.transform_raw(raw)
             p = transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
             if p.shape[1] == 1:
                 return np.column_stack([1.0 - p[:, 0], p[:, 0]])
@@ -461,6 +474,8 @@ class BatchModel:
         m = self.model
         if m.task == "outlier_detection":  # scikit-learn: -1 where decision < 0
             return (self.decision_values(raw)[:, 0] >= 0.0).astype(np.intp)
+        if m.calibration is not None:
+            return np.argmax(self.transform_raw(raw), axis=1)  # the first of equal maxima
         if raw.shape[1] == 1:
             positive = raw[:, 0] > 0.0 if m.binary_rule == "raw_gt_0" else raw[:, 0] >= 0.0
             return positive.astype(np.intp)
@@ -510,6 +525,57 @@ def transform(name, raw, params=None, softmax_sum="sequential"):
             q = raw / den if den != 0.0 else np.ones_like(raw)
             return -(2 ** (-q))
     raise ValueError("unknown post_transform %r" % (name,))
+
+
+# ----------------------------------------------------------------------------- calibration
+# CalibratedClassifierCV, as the scorer's calibrated_probabilities (the model's calibration
+# as the scorer validated it: folds of (post_transform_params, calibrators)).
+def _calibrate(cal, t):
+    if cal[0] == "isotonic":  # IsotonicRegression(out_of_bounds="clip"): clip, then numpy.interp
+        xs, ys = cal[1], cal[2]
+        if len(xs) == 1:
+            return np.full(t.shape, ys[0])
+        return np.interp(np.clip(t, xs[0], xs[-1]), xs, ys)
+    with np.errstate(over="ignore"):  # expit(-(a t + b))
+        return 1.0 / (1.0 + np.exp(-(-(cal[1] * t + cal[2]))))
+
+
+def calibrated_exact_values(calibration, post_transform, raw):
+    """Every fold's exact values side by side (as scorer.calibrated_exact_values)."""
+    raw = np.asarray(raw, dtype=np.float64)
+    folds = calibration["folds"]
+    m = raw.shape[1] // len(folds)
+    parts = [samme_decision(raw[:, f * m:(f + 1) * m], folds[f][0]["weight_total"]) if post_transform == "samme"
+             else raw[:, f * m:(f + 1) * m] for f in range(len(folds))]
+    return np.concatenate(parts, axis=1)
+
+
+def calibrated_probabilities(calibration, post_transform, softmax_sum, raw, n_classes):
+    """CalibratedClassifierCV.predict_proba for raw scores (n, folds * m)."""
+    raw = np.asarray(raw, dtype=np.float64)
+    folds = calibration["folds"]
+    m = raw.shape[1] // len(folds)
+    total = np.zeros((raw.shape[0], n_classes))
+    for f, (params, cals) in enumerate(folds):
+        r = raw[:, f * m:(f + 1) * m]
+        if calibration["response"] == "decision":
+            resp = samme_decision(r, params["weight_total"]) if post_transform == "samme" else r
+        else:
+            resp = transform(post_transform, r, params, softmax_sum)
+        if n_classes == 2:
+            resp = resp[:, -1:]
+        p = np.zeros((raw.shape[0], n_classes))
+        for c, cal in enumerate(cals):
+            p[:, c + 1 if n_classes == 2 else c] = _calibrate(cal, resp[:, c])
+        if n_classes == 2:
+            p[:, 0] = 1.0 - p[:, 1]
+        else:
+            den = np.ascontiguousarray(p).sum(axis=1)[:, None]  # numpy's row sum
+            p = np.divide(p, den, out=np.full_like(p, 1 / n_classes), where=den != 0)
+        p[(1.0 < p) & (p <= 1.0 + 1e-5)] = 1.0
+        total += p
+    total /= len(folds)
+    return total
 
 
 class _Unprepared(object):

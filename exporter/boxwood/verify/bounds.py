@@ -169,6 +169,10 @@ def value_bounds(ensemble: Any, outputs: List[OutputBound], artefact_params: Opt
     prediction, the class probabilities (the positive class only for a binary model with
     one raw output), or an isolation forest's ``score_samples``.
     """
+    if getattr(ensemble, "calibration", None) is not None:  # CalibratedClassifierCV (verify/calibration.py)
+        from . import calibration
+
+        return calibration.value_bounds(ensemble, outputs, _logistic_eta())
     post = ensemble.post_transform
     params = dict(getattr(ensemble, "post_transform_params", {}) or {})
     aparams = dict(artefact_params if artefact_params is not None else params)
@@ -323,11 +327,21 @@ def implementation_allowance(post: str, n_outputs: int) -> float:
     return INF
 
 
-def default_tolerances(post: str, n_outputs: int):
-    """{kind: (abs_tol, rel_tol, why)} for "raw" and "transformed" outputs."""
+def default_tolerances(post: str, n_outputs: int, ensemble: Any = None):
+    """{kind: (abs_tol, rel_tol, why)} for "raw" and "transformed" outputs (``ensemble``: the
+    source, needed for a calibrated one)."""
     raw_why = ("raw scores: bit-identical expected (the same float64 comparisons and additions in the "
                "same order as the source)")
     tol = {"raw": (0.0, 0.0, raw_why)}
+    if getattr(ensemble, "calibration", None) is not None:
+        from . import calibration
+
+        ab, rel = calibration.tolerance(ensemble, _logistic_eta())
+        floor = TRANSFORMED_FLOOR_ULPS * numerics.ULP_RELATIVE
+        tol["transformed"] = (ab, max(rel, floor), "calibrated probabilities: abs %.3g, relative %.3g = max(%d "
+                              "ulps, what two correct implementations can show on identical raw scores: "
+                              "verify/calibration.py)" % (ab, max(rel, floor), TRANSFORMED_FLOOR_ULPS))
+        return tol
     if post == "identity":
         tol["transformed"] = (0.0, 0.0, "identity post-transform: the output is the raw score, bit-identical "
                                         "expected")

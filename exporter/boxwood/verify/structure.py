@@ -42,6 +42,7 @@ from typing import List, Optional, Tuple
 
 from .. import numerics
 from ..ir import LEAF, Ensemble, Tree
+from . import calibration
 from .findings import Finding, OutputBound, Proof, Side, fingerprint, fmt, identical_bits, leaf_values
 from .pairs import PAIR_BUDGET, Context, compare_pair, ulps_text
 
@@ -189,6 +190,7 @@ def prove(src: Side, art: Side, input_precision: str = "float64") -> Proof:
     proof = Proof()
     es, ea = src.ensemble, art.ensemble
     _compare_metadata(proof, es, ea, src, art, input_precision)
+    calibration.compare(proof, es, ea)  # CalibratedClassifierCV's calibrators, bit for bit
     if not proof.comparable:
         proof.derivation.append("The ensembles take different inputs or give different outputs: no bound exists.")
         for k in range(es.n_outputs):
