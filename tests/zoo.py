@@ -156,6 +156,22 @@ def _build(name: str) -> Case:
         "pipe_hgbr_encoded": lambda: (_pipe_hgbr_encoded(), "diabetes_strings"),
         "pipe_gbc_strict_encoder": lambda: (_pipe_gbc_strict(), "diabetes_strings_class"),
         "pipe_rfr_constant_impute": lambda: (_pipe_rfr_constant(), "diabetes_strings"),
+        # CalibratedClassifierCV (issue 15): folds of calibrated copies, or one prefit classifier
+        "cal_rfc_isotonic_binary": lambda: (_cal(RFC(n_estimators=8, max_depth=4, random_state=0), "isotonic"),
+                                            "breast_cancer"),
+        "cal_rfc_sigmoid_multiclass_single": lambda: (
+            _cal(RFC(n_estimators=6, max_depth=4, random_state=0), "sigmoid", ensemble=False), "wine"),
+        "cal_gbc_sigmoid_multiclass": lambda: (_cal(GBC(n_estimators=10, max_depth=2, random_state=0), "sigmoid"),
+                                               "iris"),
+        "cal_gbc_isotonic_binary_prefit": lambda: (
+            _Prefit(GBC(n_estimators=10, max_depth=2, random_state=0), "isotonic"), "breast_cancer"),
+        "cal_hgbc_isotonic_multiclass": lambda: (_cal(HGBC(max_iter=10, random_state=0, early_stopping=False),
+                                                      "isotonic"), "wine"),
+        "cal_hgbc_sigmoid_binary_prefit": lambda: (
+            _Prefit(HGBC(max_iter=10, random_state=0, early_stopping=False), "sigmoid"), "breast_cancer+nan"),
+        "cal_ada_isotonic_multiclass": lambda: (_cal(ADA(DTC(max_depth=2), n_estimators=6, random_state=0),
+                                                     "isotonic"), "iris"),
+        "cal_pipe_hgbc_isotonic_prefit": lambda: (_Prefit(_pipe_impute_hgbc(), "isotonic"), "breast_cancer+nan"),
     }
     model, data = spec[name]()
     if data == "diabetes_frame":
@@ -183,6 +199,8 @@ def _build(name: str) -> Case:
         X = _with_nan(X, 0.1, seed=3)
     else:
         X, y = _data(data)
+    if isinstance(model, _Prefit):  # the classifier fitted on half the rows, calibrated on the rest
+        model = model.make(X, y)
     if name.startswith("iforest"):
         model.fit(X)
         task = "outlier_detection"
@@ -210,7 +228,14 @@ FOREST_CASES = [
 ]
 # Pipelines whose preprocessing the artefact carries (issue 5): records are raw fields.
 PIPELINE_CASES = ["pipe_hgbr_encoded", "pipe_gbc_strict_encoder", "pipe_rfr_constant_impute"]
-ALL_CASES = CASES + FOREST_CASES + PIPELINE_CASES
+# CalibratedClassifierCV (issue 15): cv=3 (one calibrated copy per fold), ensemble=False,
+# and prefit classifiers (sklearn.frozen.FrozenEstimator), isotonic and sigmoid.
+CALIBRATION_CASES = [
+    "cal_rfc_isotonic_binary", "cal_rfc_sigmoid_multiclass_single", "cal_gbc_sigmoid_multiclass",
+    "cal_gbc_isotonic_binary_prefit", "cal_hgbc_isotonic_multiclass", "cal_hgbc_sigmoid_binary_prefit",
+    "cal_ada_isotonic_multiclass", "cal_pipe_hgbc_isotonic_prefit",
+]
+ALL_CASES = CASES + FOREST_CASES + PIPELINE_CASES + CALIBRATION_CASES
 
 
 NUMERIC_DIABETES = ["age", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6"]
@@ -268,6 +293,38 @@ def _pipe_rfr_constant():
         ("drop_sex", "drop", ["sex"]),
     ], remainder="drop")
     return make_pipeline(ct, RandomForestRegressor(n_estimators=10, max_depth=6, random_state=0))
+
+
+def _cal(estimator: Any, method: str, ensemble: Any = True) -> Any:
+    from sklearn.calibration import CalibratedClassifierCV
+
+    return CalibratedClassifierCV(estimator, method=method, cv=3, ensemble=ensemble)
+
+
+class _Prefit:
+    """A classifier to fit on the even rows, wrapped in FrozenEstimator (scikit-learn 1.9's
+    way of saying "prefit") and calibrated on all rows by ``fit``."""
+
+    def __init__(self, estimator: Any, method: str):
+        self.estimator, self.method = estimator, method
+
+    def make(self, X: Any, y: Any) -> Any:
+        from sklearn.calibration import CalibratedClassifierCV
+        from sklearn.frozen import FrozenEstimator
+
+        self.estimator.fit(X[::2], y[::2])
+        return CalibratedClassifierCV(FrozenEstimator(self.estimator), method=self.method)
+
+
+def _pipe_impute_hgbc():
+    """Median imputation, then histogram boosting (the imputer's statistics are fitted once:
+    a prefit pipeline; refitted per fold they would differ, see tests/test_calibration.py)."""
+    from sklearn.ensemble import HistGradientBoostingClassifier
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+
+    return make_pipeline(SimpleImputer(strategy="median"),
+                         HistGradientBoostingClassifier(max_iter=10, random_state=0, early_stopping=False))
 
 
 @functools.lru_cache(maxsize=None)

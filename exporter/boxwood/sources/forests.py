@@ -24,6 +24,7 @@ device gets the same bits:
 """
 from __future__ import annotations
 
+import functools
 from typing import Any, List, Optional
 
 import numpy as np
@@ -33,10 +34,25 @@ from .common import UnsupportedModel, feature_names, plain, provenance
 from .trees import classic_tree
 
 
+@functools.lru_cache(maxsize=None)
+def _predict_proba_normalises() -> bool:
+    """Whether the installed DecisionTreeClassifier.predict_proba divides ``tree_.value`` by its
+    row sum (older scikit-learn) or returns the stored fractions as they are (1.9 does): asked
+    of scikit-learn on a one-leaf tree whose fractions 3/6, 2/6, 1/6 add up to 1 - 2**-53."""
+    from sklearn.tree import DecisionTreeClassifier
+
+    t = DecisionTreeClassifier().fit([[0.0]] * 6, [0, 0, 0, 1, 1, 2])
+    stored = np.array(t.tree_.value[0, 0, :3], dtype=np.float64)
+    return bool(t.predict_proba([[0.0]])[0][0] != stored[0])
+
+
 def _tree_proba(tree: Any, n_classes: int) -> np.ndarray:
     """Per-node class probabilities as DecisionTreeClassifier.predict_proba computes them:
-    value[:, 0, :n_classes] divided by its row sum (0 sums replaced by 1)."""
+    value[:, 0, :n_classes], divided by its row sum (0 sums replaced by 1) where the installed
+    scikit-learn does so (:func:`_predict_proba_normalises`)."""
     proba = np.array(tree.value[:, 0, :n_classes], dtype=np.float64)
+    if not _predict_proba_normalises():
+        return proba
     normalizer = proba.sum(axis=1)[:, np.newaxis]
     normalizer[normalizer == 0.0] = 1.0
     proba /= normalizer
