@@ -171,7 +171,8 @@ def _build(name: str) -> Case:
             _Prefit(HGBC(max_iter=10, random_state=0, early_stopping=False), "sigmoid"), "breast_cancer+nan"),
         "cal_ada_isotonic_multiclass": lambda: (_cal(ADA(DTC(max_depth=2), n_estimators=6, random_state=0),
                                                      "isotonic"), "iris"),
-        "cal_pipe_hgbc_isotonic_prefit": lambda: (_Prefit(_pipe_impute_hgbc(), "isotonic"), "breast_cancer+nan"),
+        "cal_pipe_hgbc_isotonic_prefit": lambda: (_Prefit(_pipe_impute_hgbc(), "isotonic"),
+                                                  "breast_cancer_frame+nan"),
     }
     model, data = spec[name]()
     if data == "diabetes_frame":
@@ -194,6 +195,12 @@ def _build(name: str) -> Case:
     elif data == "friedman1_multi":
         X, y = _data("friedman1")
         y = np.c_[y, np.sin(X[:, 0] * 3.0) + X[:, 3]]  # a second target for multi-output
+    elif data == "breast_cancer_frame+nan":  # named columns, as a DataFrame user has them
+        import pandas as pd
+        from sklearn import datasets
+
+        X, y = _data("breast_cancer")
+        X = pd.DataFrame(_with_nan(X, 0.1, seed=3), columns=[str(c) for c in datasets.load_breast_cancer().feature_names])
     elif data.endswith("+nan"):
         X, y = _data(data[:-4])
         X = _with_nan(X, 0.1, seed=3)

@@ -111,12 +111,11 @@ def read(model: Any) -> Optional[Ensemble]:
             trees.append(t)
         base_values += list(ens.base_values)
         names += ["fold%d:%s" % (f, n) for n in (ens.output_names or ["output_%d" % j for j in range(m)])]
-    params = {"method": model.method, "folds": len(parts), "response": response,
-              "classifier": first.provenance.get("estimator"),
-              "ensemble": plain(model.ensemble) if not isinstance(model.ensemble, bool) else model.ensemble}
+    params = {"calibration_method": model.method, "calibration_folds": len(parts),
+              "calibration_response": response, "calibration_ensemble": plain(model.ensemble)}
     prov = dict(first.provenance)
     prov["estimator"] = "sklearn.calibration.CalibratedClassifierCV[%s]" % first.provenance.get("estimator")
-    prov["parameters"] = dict(prov.get("parameters") or {}, calibration=params)
+    prov["parameters"] = dict(prov.get("parameters") or {}, **params)
     return Ensemble(
         task="classification", features=first.features, trees=trees, base_values=base_values,
         post_transform=first.post_transform, combine=first.combine, compare_precision=first.compare_precision,
