@@ -25,7 +25,8 @@ from boxwood.numerics import ulp_distance
 from boxwood.sources.model import SourceEvaluator
 from test_conformance import probe_rows
 
-C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES]
+C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES
+           and n not in zoo.CALIBRATION_CASES]  # refused by name (tests/test_calibration.py)
 PROBES = 60  # threshold probes per model, besides the reference rows
 ULPS = 4
 

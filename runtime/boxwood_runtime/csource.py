@@ -195,6 +195,10 @@ def generate(model, prefix="model"):
 
     Raises :class:`CTargetError` when the model needs what C cannot carry (text steps)."""
     prefix = prefix_from(prefix, prefix)
+    if getattr(model, "calibration", None) is not None:
+        raise CTargetError("CalibratedClassifierCV (outputs.calibration: %d folds) is not supported by the C "
+                           "target yet; score it with the Python device scorer (boxwood export MODEL -o "
+                           "model.json)" % len(model.calibration["folds"]))
     plan = _plan(model)
     up = prefix.upper()
     doc = model.doc

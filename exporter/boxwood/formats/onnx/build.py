@@ -181,6 +181,12 @@ def refuse_unsupported(ensemble: Ensemble) -> None:
     if ensemble.post_transform == "isolation" and ensemble.post_transform_params["denominator"] == 0.0:
         raise ModelError("an isolation forest fitted on single-sample trees (denominator 0: scikit-learn sets "
                          "every score to -1) is not written to ONNX")
+    if getattr(ensemble, "calibration", None) is not None:
+        raise ModelError("CalibratedClassifierCV (calibration: %d folds, %s) is not written to ONNX: the isotonic "
+                         "interpolation (a knot search, then numpy.interp's formula) and the fold average have no "
+                         "exact ai.onnx.ml form boxwood builds yet; export to JSON (boxwood export MODEL -o "
+                         "model.json) or C instead" % (len(ensemble.calibration["folds"]), ", ".join(sorted({
+                             c["method"] for f in ensemble.calibration["folds"] for c in f["calibrators"]}))))
 
 
 def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
