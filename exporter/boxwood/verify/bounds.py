@@ -170,9 +170,7 @@ def value_bounds(ensemble: Any, outputs: List[OutputBound], artefact_params: Opt
     one raw output), or an isolation forest's ``score_samples``.
     """
     if getattr(ensemble, "calibration", None) is not None:  # CalibratedClassifierCV (verify/calibration.py)
-        from . import calibration
-
-        return calibration.value_bounds(ensemble, outputs, _logistic_eta())
+        return calibrated_bounds(ensemble, outputs, _logistic_eta())
     post = ensemble.post_transform
     params = dict(getattr(ensemble, "post_transform_params", {}) or {})
     aparams = dict(artefact_params if artefact_params is not None else params)
@@ -334,9 +332,7 @@ def default_tolerances(post: str, n_outputs: int, ensemble: Any = None):
                "same order as the source)")
     tol = {"raw": (0.0, 0.0, raw_why)}
     if getattr(ensemble, "calibration", None) is not None:
-        from . import calibration
-
-        ab, rel = calibration.tolerance(ensemble, _logistic_eta())
+        ab, rel = calibrated_tolerance(ensemble, _logistic_eta())
         floor = TRANSFORMED_FLOOR_ULPS * numerics.ULP_RELATIVE
         tol["transformed"] = (ab, max(rel, floor), "calibrated probabilities: abs %.3g, relative %.3g = max(%d "
                               "ulps, what two correct implementations can show on identical raw scores: "
@@ -361,3 +357,57 @@ def within(bound_abs: float, bound_rel: float, abs_tol: float, rel_tol: float) -
     """A certified bound meets a tolerance |a - s| <= max(abs_tol, rel_tol |s|) for every input
     when the absolute bound is <= abs_tol or the relative bound is <= rel_tol."""
     return bound_abs <= abs_tol or bound_rel <= rel_tol
+
+
+# ----------------------------------------------------------------------------- calibration
+def calibrated_bounds(ensemble: Any, outputs: List[Any], eta: Fraction) -> Tuple[List[Any], List[Any], List[str]]:
+    """(exact values, calibrated probabilities, derivation lines) for a calibrated source
+    (derivation: verify/calibration.py's docstring); ``eta`` is the logistic's relative error per side."""
+    cal = ensemble.calibration
+    folds = cal["folds"]
+    m = ensemble.fold_outputs
+    exact_all = all(o.exact for o in outputs)
+    exact_vals = []
+    for f in range(len(folds)):
+        part = outputs[f * m:(f + 1) * m]
+        if ensemble.post_transform == "samme":
+            ok = all(o.exact for o in part)
+            n = 1 if m == 2 else m
+            exact_vals += [ValueBound("fold%d:decision %d" % (f, j), 0.0 if ok else INF, 0.0 if ok else INF, ok)
+                           for j in range(n)]
+        else:
+            exact_vals += [ValueBound(o.name, o.raw_abs, identity_rel(o.raw_abs, o.source_range), o.exact)
+                           for o in part]
+    classes = [str(c) for c in ensemble.classes]
+    k, n_f = len(classes), len(folds)
+    sigmoid = any(c["method"] == "sigmoid" for fold in folds for c in fold["calibrators"])
+    lines = ["calibration (%d folds, %s response, %s): exact values are every fold's own raw scores"
+             % (n_f, cal["response"], cal["normalisation"])]
+    if not exact_all:
+        lines.append("raw scores may differ: no bound is carried through the calibrators")
+        return exact_vals, [ValueBound(c, INF, INF) for c in classes], lines
+    if not sigmoid:
+        lines.append("raw scores bit-identical and isotonic calibrators only: the same correctly rounded "
+                     "operations in the same order, so the probabilities are bit-identical")
+        return exact_vals, [ValueBound(c, 0.0, 0.0, True) for c in classes], lines
+    if k == 2:
+        ab = round_up(2 * (eta + 4 * _U))
+        rel1 = round_up(2 * (eta + (n_f + 2) * _U))
+        lines.append("sigmoid, two classes: |d p1| <= eta + (F + 2) u relatively; p0 = 1 - p1 within "
+                     "eta + 4u absolutely (doubled as slack)")
+        return exact_vals, [ValueBound(classes[0], ab, INF), ValueBound(classes[1], ab, rel1)], lines
+    rel = round_up(2 * (2 * eta + (k + n_f + 3) * _U))
+    lines.append("sigmoid, %d classes: positive terms, relative 2 eta + (K + F + 3) u (doubled as slack)" % k)
+    return exact_vals, [ValueBound(c, min(rel, 1.0), rel) for c in classes], lines
+
+
+def calibrated_tolerance(ensemble: Any, eta: Fraction) -> Tuple[float, float]:
+    """(abs, rel) the calibrated probabilities are compared with by default: what two correct
+    implementations can show on identical raw scores (0 without a sigmoid)."""
+    cal = ensemble.calibration
+    if not any(c["method"] == "sigmoid" for fold in cal["folds"] for c in fold["calibrators"]):
+        return 0.0, 0.0
+    k, n_f = len(ensemble.classes), len(cal["folds"])
+    if k == 2:
+        return round_up(2 * (eta + 4 * _U)), round_up(2 * (eta + (n_f + 2) * _U))
+    return 0.0, round_up(2 * (2 * eta + (k + n_f + 3) * _U))

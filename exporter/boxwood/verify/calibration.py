@@ -5,7 +5,7 @@
   calibrator (sigmoid a and b, every isotonic knot x and y) bit for bit. Any difference is a
   "fail" finding naming the fold, the class and the knot: the bound is not carried through a
   changed calibrator.
-* :func:`value_bounds` - the bounds of the compared values. Exact values are every fold's
+* ``bounds.calibrated_bounds`` (verify/bounds.py) - the bounds of the compared values. Exact values are every fold's
   raw scores (AdaBoost: its decision values), bounded as the raw scores are. The calibrated
   probabilities: when every raw score is proven bit-identical and the calibrations are
   identical, isotonic calibrators and the normalisation use only correctly rounded +, -, *, /
@@ -21,13 +21,9 @@
 """
 from __future__ import annotations
 
-from fractions import Fraction
-from typing import Any, List, Tuple
+from typing import Any
 
-from ..numerics import INF, round_up
 from .findings import Finding, Proof, identical_bits
-
-_U = Fraction(1, 2 ** 53)
 
 
 def compare(proof: Proof, es: Any, ea: Any) -> None:
@@ -76,58 +72,3 @@ def _compare_one(fail: Any, where: str, s: Any, a: Any) -> None:
             fail("%s: isotonic knot %d: x source %r, artefact %r" % (where, i, xs, xa))
         if not identical_bits(ys, ya):
             fail("%s: isotonic knot %d: y source %r, artefact %r" % (where, i, ys, ya))
-
-
-def value_bounds(ensemble: Any, outputs: List[Any], eta: Fraction) -> Tuple[List[Any], List[Any], List[str]]:
-    """(exact values, calibrated probabilities, derivation lines) for a calibrated source
-    (see the module docstring); ``eta`` is the logistic's relative error per side."""
-    from .bounds import ValueBound, identity_rel
-
-    cal = ensemble.calibration
-    folds = cal["folds"]
-    m = ensemble.fold_outputs
-    exact_all = all(o.exact for o in outputs)
-    exact_vals = []
-    for f in range(len(folds)):
-        part = outputs[f * m:(f + 1) * m]
-        if ensemble.post_transform == "samme":
-            ok = all(o.exact for o in part)
-            n = 1 if m == 2 else m
-            exact_vals += [ValueBound("fold%d:decision %d" % (f, j), 0.0 if ok else INF, 0.0 if ok else INF, ok)
-                           for j in range(n)]
-        else:
-            exact_vals += [ValueBound(o.name, o.raw_abs, identity_rel(o.raw_abs, o.source_range), o.exact)
-                           for o in part]
-    classes = [str(c) for c in ensemble.classes]
-    k, n_f = len(classes), len(folds)
-    sigmoid = any(c["method"] == "sigmoid" for fold in folds for c in fold["calibrators"])
-    lines = ["calibration (%d folds, %s response, %s): exact values are every fold's own raw scores"
-             % (n_f, cal["response"], cal["normalisation"])]
-    if not exact_all:
-        lines.append("raw scores may differ: no bound is carried through the calibrators")
-        return exact_vals, [ValueBound(c, INF, INF) for c in classes], lines
-    if not sigmoid:
-        lines.append("raw scores bit-identical and isotonic calibrators only: the same correctly rounded "
-                     "operations in the same order, so the probabilities are bit-identical")
-        return exact_vals, [ValueBound(c, 0.0, 0.0, True) for c in classes], lines
-    if k == 2:
-        ab = round_up(2 * (eta + 4 * _U))
-        rel1 = round_up(2 * (eta + (n_f + 2) * _U))
-        lines.append("sigmoid, two classes: |d p1| <= eta + (F + 2) u relatively; p0 = 1 - p1 within "
-                     "eta + 4u absolutely (doubled as slack)")
-        return exact_vals, [ValueBound(classes[0], ab, INF), ValueBound(classes[1], ab, rel1)], lines
-    rel = round_up(2 * (2 * eta + (k + n_f + 3) * _U))
-    lines.append("sigmoid, %d classes: positive terms, relative 2 eta + (K + F + 3) u (doubled as slack)" % k)
-    return exact_vals, [ValueBound(c, min(rel, 1.0), rel) for c in classes], lines
-
-
-def tolerance(ensemble: Any, eta: Fraction) -> Tuple[float, float]:
-    """(abs, rel) the calibrated probabilities are compared with by default: what two correct
-    implementations can show on identical raw scores (0 without a sigmoid)."""
-    cal = ensemble.calibration
-    if not any(c["method"] == "sigmoid" for fold in cal["folds"] for c in fold["calibrators"]):
-        return 0.0, 0.0
-    k, n_f = len(ensemble.classes), len(cal["folds"])
-    if k == 2:
-        return round_up(2 * (eta + 4 * _U)), round_up(2 * (eta + (n_f + 2) * _U))
-    return 0.0, round_up(2 * (2 * eta + (k + n_f + 3) * _U))
