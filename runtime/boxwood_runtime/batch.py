@@ -430,9 +430,9 @@ class BatchModel:
 
     def decision_function(self, X):
         """Decision values (raw scores for boosted models): shape (n,) or (n, K)."""
-        if not self.model.has_decision_function:
-            raise TypeError("decision_function is not defined for this model (as in scikit-learn); use "
-                            "predict or predict_proba")
+        if self.model.calibration is not None:
+            raise TypeError("decision_function is not defined for a calibrated classifier (CalibratedClassifierCV "
+                            "has none); use predict or predict_proba")
         d = self._run(X, self.decision_values)
         return d[:, 0] if d.shape[1] == 1 else d
 
