@@ -10,11 +10,12 @@ from __future__ import annotations
 from typing import Any
 
 from ..ir import Ensemble
-from . import boosting, forests, pipeline
+from . import boosting, forests, pipeline, wrappers
 from .common import UnsupportedModel
 from .loading import PICKLE_WARNING, ModelFileError, load_model_file
 
-READERS = (boosting.read, forests.read, pipeline.read)
+READERS = (boosting.read, forests.read, pipeline.read,
+           wrappers.reader((boosting.read, forests.read, pipeline.read)))
 
 SUPPORTED = (
     "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
@@ -28,6 +29,9 @@ SUPPORTED = (
     "sklearn.ensemble.IsolationForest (score_samples, decision_function, predict)",
     "sklearn.ensemble.AdaBoostClassifier (SAMME, decision-tree base learners)",
     "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(pipeline.SUPPORTED_STEPS),
+    "sklearn.multioutput.MultiOutputRegressor around any regressor above (or a Pipeline ending in one)",
+    "sklearn.compose.TransformedTargetRegressor around any regressor above, with func/inverse_func "
+    "numpy.log/numpy.exp or numpy.log1p/numpy.expm1, or transformer: " + "; ".join(wrappers.SUPPORTED_TRANSFORMERS),
 )
 
 

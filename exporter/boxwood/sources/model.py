@@ -59,7 +59,11 @@ class SourceModel:
         with scikit-learn's own trees, as its ``score_samples`` does before the power)."""
         X = self.matrix(rows)
         m = self.model
-        if self.ensemble.task == "outlier_detection":
+        from .wrappers import is_wrapper, raw_scores
+
+        if is_wrapper(m):  # MultiOutputRegressor, TransformedTargetRegressor: the inner raw scores
+            out = raw_scores(m, X)
+        elif self.ensemble.task == "outlier_detection":
             from .forests import isolation_path_sums
 
             out = isolation_path_sums(m, X)

@@ -36,7 +36,7 @@ def _load_model(model_or_path: Any) -> Tuple[Any, str, Optional[str]]:
 def _tolerances(source: Ensemble, abs_tol: Optional[float], rel_tol: Optional[float],
                 overrides: Optional[Dict[str, Tuple[float, float]]]) -> Dict[str, Dict[str, Any]]:
     out = {}
-    for kind, (a, r, why) in bounds.default_tolerances(source.post_transform, source.n_outputs).items():
+    for kind, (a, r, why) in bounds.default_tolerances(source.post_transform, source.n_outputs, source.target_steps).items():
         source_of = "default"
         if overrides and kind in overrides:
             a, r = overrides[kind]
@@ -50,7 +50,7 @@ def _tolerances(source: Ensemble, abs_tol: Optional[float], rel_tol: Optional[fl
                 raise ValueError("the %s tolerance must be a number >= 0, got %r" % (name, v))
         if source_of == "given":
             why = "set by the caller (%s); the default was: %s" % (
-                "abs %g, rel %g" % (a, r), bounds.default_tolerances(source.post_transform, source.n_outputs)[kind][2])
+                "abs %g, rel %g" % (a, r), bounds.default_tolerances(source.post_transform, source.n_outputs, source.target_steps)[kind][2])
         out[kind] = {"abs": float(a), "rel": float(r), "origin": source_of, "why": why}
     return out
 

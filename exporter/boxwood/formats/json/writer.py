@@ -1,4 +1,5 @@
-"""Write the boxwood JSON artefact (format version 2).
+"""Write the boxwood JSON artefact (format version 2, or 3 when it needs to: see
+:func:`needs_format_3`).
 
 The layout is documented by schemas/tree-ensemble.schema.json and the page
 docs/artefact-format.md. The file is the canonical JSON of the document (keys
@@ -21,6 +22,21 @@ from boxwood_runtime.scorer import _DIGEST_PREFIX, FORMAT_NAME, artefact_bytes, 
 from ...ir import Ensemble
 
 FORMAT_VERSION = 2
+FORMAT_VERSION_3 = 3
+
+
+def needs_format_3(ensemble: Ensemble) -> bool:
+    """True when ``ensemble`` uses something format version 2 cannot carry (then the
+    artefact says 3, and older scorers refuse it with their "format_version" message);
+    False keeps version 2 and the bytes of every older artefact. Today: target steps."""
+    return bool(ensemble.target_steps)
+
+
+def _target_step(step: Dict[str, Any]) -> Dict[str, Any]:
+    out: Dict[str, Any] = {"op": step["op"]}
+    if "values" in step:
+        out["values"] = [number(v) for v in step["values"]]
+    return out
 
 
 def text_reading() -> Dict[str, Any]:
@@ -150,9 +166,11 @@ def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]
         outputs["softmax_sum"] = ensemble.softmax_sum
     if ensemble.post_transform_params:
         outputs["post_transform_params"] = {k: number(v) for k, v in sorted(ensemble.post_transform_params.items())}
+    if ensemble.target_steps:
+        outputs["target_steps"] = [_target_step(st) for st in ensemble.target_steps]
     doc: Dict[str, Any] = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
+        "format_version": FORMAT_VERSION_3 if needs_format_3(ensemble) else FORMAT_VERSION,
         "task": ensemble.task,
         "inputs": inputs,
         "outputs": outputs,
