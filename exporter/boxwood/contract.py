@@ -249,7 +249,7 @@ def apply_target_steps(steps: Sequence[Dict[str, Any]], values: np.ndarray) -> n
                 y = np.exp(y)
             elif op == "expm1":
                 y = np.expm1(y)
-            else:
+            elif op in ("mul", "add", "sub", "div"):
                 c = np.asarray(step["values"], dtype=np.float64)
                 if op == "mul":
                     y *= c
@@ -257,8 +257,8 @@ def apply_target_steps(steps: Sequence[Dict[str, Any]], values: np.ndarray) -> n
                     y += c
                 elif op == "sub":
                     y -= c
-                elif op == "div":
-                    y /= c
                 else:
-                    raise ValueError("unknown target step %r" % (op,))
+                    y /= c
+            else:
+                raise ValueError("unknown target step %r" % (op,))
     return y
