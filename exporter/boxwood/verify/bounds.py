@@ -249,8 +249,9 @@ def carry_target_steps(steps: List[Dict[str, Any]], post: str, outputs: List[Out
       ``v+c`` / ``v-c``: A + 2u (M + |c|), R from A and the range (0 may be inside it);
     * exp: e**a / e**s lies in [e**-A, e**A], so R = e**A (1+eps)/(1-eps) - 1 and
       A = e**hi A + 2 eps e**hi; expm1 (assumed within eps like exp): |d expm1| <= e**hi, so
-      A = e**hi A + 2 eps max|expm1|, R from A and the range (or (1+eps)/(1-eps) - 1 when
-      its inputs are identical). M is the largest |value| in the range."""
+      A = e**hi A + 2 eps max|expm1|, and |s| e**s / |expm1(s)| <= 1 + max(s, 0) gives
+      R' = (1 + max(hi, 0)) e**(M R) R, then (1+eps)/(1-eps) as for exp. M is the largest
+      |value| in the range."""
     if not steps:
         return []
     lines = []
@@ -294,9 +295,14 @@ def carry_target_steps(steps: List[Dict[str, Any]], post: str, outputs: List[Out
                 lo, hi = 0.0, exp_up(hi)
             else:  # expm1
                 big = max(_fin(abs(math.expm1(lo)) if lo < 700 else INF), _fin(exp_up(hi)))
+                # relative: |expm1(a) - expm1(s)| <= e**xi |a - s|, xi <= s + |s| R, and
+                # |s| e**s / |expm1(s)| <= 1 + max(s, 0); so R grows by (1 + max(hi, 0)) e**(M R)
+                grow = r * (1 + _fin(max(hi, 0.0))) * _fin(exp_up(round_up(m * r))) if r < 1 else _fin(INF)
+                r = _relative(grow, _EPS, _EPS)
                 a = e_hi * a + 2 * _EPS * big
                 lo, hi = max(-1.0, -up(-math.expm1(lo))) if lo < 700 else 0.0, exp_up(hi)
-                r = _relative(Fraction(0), _EPS, _EPS) if same else _fin(identity_rel(round_up(a), (lo, hi)))
+                if r >= 1:
+                    r = _fin(identity_rel(round_up(a), (lo, hi)))
             same = False
         vb.abs = 0.0 if same else round_up(a) + SUBNORMAL_SLACK
         vb.rel = 0.0 if same else min(round_up(r), identity_rel(vb.abs, (lo, hi)))
