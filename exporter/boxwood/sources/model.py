@@ -108,9 +108,10 @@ class SourceEvaluator(Evaluator):
         # predictions through joblib; with n_jobs None or 1 that runs the trees one after
         # the other in order (the conformance suite sees bit-identical means), with more
         # jobs the order depends on the threads (from sklearn.ensemble._forest, stated).
-        final = model.steps[-1][1] if hasattr(model, "steps") else model
-        jobs = getattr(final, "n_jobs", None)
-        self.summation_order = "tree" if ensemble.combine == "sum" or jobs in (None, 1) else "any"
+        from .wrappers import tree_models  # the forests inside a pipeline or wrapper
+
+        jobs = {getattr(final, "n_jobs", None) for final in tree_models(model)}
+        self.summation_order = "tree" if ensemble.combine == "sum" or jobs <= {None, 1} else "any"
 
     def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
         # scikit-learn's finiteness check sums the rows; extreme probes overflow that sum

@@ -217,6 +217,17 @@ def is_wrapper(model: Any) -> bool:
     return isinstance(model, (MultiOutputRegressor, TransformedTargetRegressor))
 
 
+def tree_models(model: Any) -> List[Any]:
+    """The tree models inside a wrapper or pipeline (the model itself for anything else)."""
+    if hasattr(model, "steps"):
+        return tree_models(model.steps[-1][1])
+    if is_wrapper(model) and hasattr(model, "regressor_"):
+        return tree_models(model.regressor_)
+    if is_wrapper(model):
+        return [m for e in model.estimators_ for m in tree_models(e)]
+    return [model]
+
+
 def raw_scores(model: Any, X: Any) -> np.ndarray:
     """The raw scores (n, outputs) of a regressor as scikit-learn computes them: a wrapper's
     inner regressors' (before their inverse link and the wrapper's target transform), a
