@@ -43,6 +43,43 @@ def test_constants_agree_one_by_one():
             copy()
 
 
+def test_target_steps_agree_in_all_three_copies():
+    """The target steps (a regressor's inverse target transform) are the same list of ops in
+    the hub and the scorer, and each copy applies each op the same way: the contract and the
+    numpy batch copy bit for bit; the scorer bit for bit for the IEEE *, +, -, / and within
+    SELF_CHECK_ULPS for math.exp / math.expm1 against numpy's (reference: numpy itself)."""
+    assert tuple(scorer._TARGET_OPS) == tuple(ir.TARGET_OPS)
+    rng = np.random.default_rng(7)
+    y = np.concatenate([rng.normal(0, 3, (200, 2)), [[0.0, -0.0], [1e-300, -1e-300], [700.0, -745.0],
+                                                     [800.0, -800.0], [5e-324, 1e-17]]])
+    for op in ir.TARGET_OPS:
+        step = {"op": op}
+        if op in ir.TARGET_OPS_WITH_VALUES:
+            step["values"] = [0.37, -12.5]
+        want = {"exp": np.exp, "expm1": np.expm1}.get(op)
+        with np.errstate(over="ignore"):
+            if want is None:
+                c = np.array(step["values"])
+                want = {"mul": lambda v: v * c, "add": lambda v: v + c, "sub": lambda v: v - c,
+                        "div": lambda v: v / c}[op]
+            expected = want(y)
+        ours = contract.apply_target_steps([step], y)
+        pair = (op, step.get("values"))
+        assert _bits_equal(ours, expected), op
+        assert _bits_equal(batch_mod.apply_target_steps([pair], y), expected), op
+        got_s = np.array([scorer.apply_target_steps([pair], list(r)) for r in y])
+        if op in ("exp", "expm1"):
+            worst = max(ulp_distance(float(a), float(b)) for a, b in zip(got_s.ravel(), expected.ravel()))
+            assert worst <= SELF_CHECK_ULPS, (op, worst)
+        else:
+            assert _bits_equal(got_s, expected), op
+    for copy in (lambda: contract.apply_target_steps([{"op": "log"}], y),
+                 lambda: batch_mod.apply_target_steps([("log", None)], y),
+                 lambda: scorer.apply_target_steps([("log", None)], [0.0])):
+        with pytest.raises(ValueError, match="unknown target step"):
+            copy()
+
+
 def _raw_rows(device, case):
     """Raw scores of the device on the case's rows, plus synthetic raw rows that sit on the
     contract's edges: exact zeros (the binary rules differ there), ties between classes
@@ -106,7 +143,8 @@ def test_three_copies_agree_on_every_task(name):
 
 
 @pytest.mark.parametrize("name", [n for n in zoo.ALL_CASES
-                                  if zoo.fitted(n).task != "regression" or "hgbr_gamma" in n])
+                                  if zoo.fitted(n).task != "regression" or "hgbr_gamma" in n
+                                  or n in zoo.WRAPPER_CASES])
 def test_contract_matches_scikit_learn(name):
     """From scikit-learn's own raw scores, the contract gives scikit-learn's own labels
     (predict) and outputs (predict_proba / score_samples) - the outside reference."""

@@ -7,6 +7,8 @@ Data sets are the ones scikit-learn ships (no download):
 - wine: UCI Machine Learning Repository, Wine recognition data (Forina et al.).
 - make_hastie_10_2: Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, eq. 10.2.
 - make_friedman1: Friedman (1991), "Multivariate Adaptive Regression Splines", Ann. Statist.
+- linnerud: Tenenhaus (1998), "La regression PLS: theorie et pratique" (three exercise
+  variables, three physiological targets; scikit-learn's multi-output regression set).
 
 Each case is fitted once per test session (``fitted(name)`` caches) and kept small so
 the whole zoo fits in seconds. ``CASES`` lists the names; ``kind(name)`` tells what a
@@ -63,6 +65,8 @@ def _data(which: str):
     if which == "hastie":
         X, y = datasets.make_hastie_10_2(n_samples=1200, random_state=1)
         return X, y
+    if which == "linnerud":
+        return datasets.load_linnerud(return_X_y=True)
     if which == "friedman1":
         return datasets.make_friedman1(n_samples=1200, noise=1.0, random_state=2)
     raise KeyError(which)
@@ -105,6 +109,13 @@ def _build(name: str) -> Case:
         HistGradientBoostingClassifier as HGBC,
         HistGradientBoostingRegressor as HGBR,
     )
+
+    from sklearn.compose import TransformedTargetRegressor as TTR
+    from sklearn.impute import SimpleImputer
+    from sklearn.multioutput import MultiOutputRegressor as MOR
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import (FunctionTransformer, MaxAbsScaler, MinMaxScaler, RobustScaler,
+                                       StandardScaler)
 
     gb = dict(n_estimators=40, max_depth=3, random_state=0)
     hgb = dict(max_iter=40, random_state=0, early_stopping=False)
@@ -173,6 +184,25 @@ def _build(name: str) -> Case:
                                                      "isotonic"), "iris"),
         "cal_pipe_hgbc_isotonic_prefit": lambda: (_Prefit(_pipe_impute_hgbc(), "isotonic"),
                                                   "breast_cancer_frame+nan"),
+        # wrappers (issue 15): per-target regressors and transformed targets
+        "mor_gbr": lambda: (MOR(GBR(n_estimators=30, max_depth=2, random_state=0)), "linnerud"),
+        "mor_hgbr": lambda: (MOR(HGBR(max_iter=30, min_samples_leaf=3, random_state=0, early_stopping=False)),
+                             "linnerud"),
+        "mor_rfr_pipeline": lambda: (MOR(make_pipeline(SimpleImputer(strategy="median"),
+                                                       RFR(n_estimators=8, max_depth=4, random_state=0))),
+                                     "linnerud+nan"),
+        "ttr_hgbr_log": lambda: (TTR(HGBR(**hgb), func=np.log, inverse_func=np.exp), "diabetes"),
+        "ttr_gbr_standard": lambda: (TTR(GBR(**gb), transformer=StandardScaler()), "diabetes"),
+        "ttr_hgbr_log1p": lambda: (TTR(HGBR(**hgb), transformer=FunctionTransformer(np.log1p, np.expm1)),
+                                   "diabetes"),
+        "ttr_hgbr_minmax": lambda: (TTR(HGBR(**hgb), transformer=MinMaxScaler()), "friedman1"),
+        "ttr_pipeline_maxabs": lambda: (TTR(make_pipeline(SimpleImputer(strategy="median"), GBR(**gb)),
+                                            transformer=MaxAbsScaler()), "diabetes+nan"),
+        "ttr_mor_robust": lambda: (TTR(MOR(HGBR(max_iter=30, min_samples_leaf=3, random_state=0,
+                                                early_stopping=False)), transformer=RobustScaler()), "linnerud"),
+        "pipe_ttr_hgbr_log": lambda: (make_pipeline(SimpleImputer(strategy="mean"),
+                                                    TTR(HGBR(**hgb), func=np.log, inverse_func=np.exp)),
+                                      "diabetes+nan"),
     }
     model, data = spec[name]()
     if data == "diabetes_frame":
@@ -242,7 +272,13 @@ CALIBRATION_CASES = [
     "cal_gbc_isotonic_binary_prefit", "cal_hgbc_isotonic_multiclass", "cal_hgbc_sigmoid_binary_prefit",
     "cal_ada_isotonic_multiclass", "cal_pipe_hgbc_isotonic_prefit",
 ]
-ALL_CASES = CASES + FOREST_CASES + PIPELINE_CASES + CALIBRATION_CASES
+# MultiOutputRegressor and TransformedTargetRegressor (issue 15, item 5; tests/test_wrappers.py).
+WRAPPER_CASES = ["mor_gbr", "mor_hgbr", "mor_rfr_pipeline", "ttr_hgbr_log", "ttr_gbr_standard", "ttr_hgbr_log1p",
+                 "ttr_hgbr_minmax", "ttr_pipeline_maxabs", "ttr_mor_robust", "pipe_ttr_hgbr_log"]
+ALL_CASES = CASES + FOREST_CASES + PIPELINE_CASES + CALIBRATION_CASES + WRAPPER_CASES
+# Cases the ONNX writer refuses by design (numpy.expm1 has no exact ONNX operator);
+# tests/test_wrappers.py checks the refusal.
+ONNX_REFUSED = ["ttr_hgbr_log1p"]
 
 
 NUMERIC_DIABETES = ["age", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6"]

@@ -9,7 +9,8 @@ evaluator promises. Written once here for the workstation side.
   they are its decision values ``raw / weight_total`` (two classes: ``-d0 + d1``);
 * *decision values* (``decision_function``): the raw scores; AdaBoost as above; an
   isolation forest's ``score_samples - offset``;
-* *transformed outputs*: the prediction, the class probabilities (for a binary
+* *transformed outputs*: the prediction (after the post-transform, a regressor's target
+  steps, element-wise and in order: :func:`apply_target_steps`), the class probabilities (for a binary
   classifier with one raw output, the positive class only), or an isolation forest's
   ``score_samples``;
 * *labels*: the class of the largest decision value (first of equal maxima); a binary
@@ -117,6 +118,7 @@ class OutputContract:
         self.softmax_sum = ensemble.softmax_sum
         self.calibration = ensemble.calibration
         self.fold_outputs = ensemble.fold_outputs
+        self.target_steps = [dict(st) for st in (ensemble.target_steps or [])]
 
     # -- widths --------------------------------------------------------------------
     @property
@@ -166,7 +168,8 @@ class OutputContract:
         if self.calibration is not None:
             return calibrated_probabilities(self.calibration, self.post_transform, self.softmax_sum,
                                             _matrix(raw), len(self.classes))
-        return transform(self.post_transform, _matrix(raw), self.params, self.softmax_sum)
+        out = transform(self.post_transform, _matrix(raw), self.params, self.softmax_sum)
+        return apply_target_steps(self.target_steps, out)
 
     def positive_class(self, probabilities: np.ndarray) -> np.ndarray:
         """Class probabilities (n, n_classes) as transformed outputs: a one-score binary
@@ -359,3 +362,33 @@ def calibrated_probabilities(calibration: Dict[str, Any], post_transform: str, s
         total += proba
     total /= len(calibration["folds"])
     return total
+def apply_target_steps(steps: Sequence[Dict[str, Any]], values: np.ndarray) -> np.ndarray:
+    """Apply a regressor's target steps (ir.TARGET_OPS) to transformed outputs (n, K), in
+    order, element-wise in float64: what scikit-learn's TransformedTargetRegressor does with
+    ``inverse_func`` (numpy.exp, numpy.expm1) or its scaler's ``inverse_transform`` (one IEEE
+    multiplication, addition, subtraction or division per step, with one constant per
+    output: StandardScaler ``y *= scale_; y += mean_``, MinMaxScaler ``y -= min_; y /=
+    scale_``). Returns a new array when there are steps, ``values`` itself otherwise."""
+    if not steps:
+        return values
+    y = np.array(_matrix(values), dtype=np.float64)
+    with np.errstate(over="ignore"):
+        for step in steps:
+            op = step["op"]
+            if op == "exp":
+                y = np.exp(y)
+            elif op == "expm1":
+                y = np.expm1(y)
+            elif op in ("mul", "add", "sub", "div"):
+                c = np.asarray(step["values"], dtype=np.float64)
+                if op == "mul":
+                    y *= c
+                elif op == "add":
+                    y += c
+                elif op == "sub":
+                    y -= c
+                else:
+                    y /= c
+            else:
+                raise ValueError("unknown target step %r" % (op,))
+    return y

@@ -22,6 +22,9 @@ stated as data instead of being left to whoever reads the model:
   scores give its response (decision values or probabilities, by the post-transform),
   per-class calibrators map the response to probabilities, and the folds' probabilities
   are averaged (docs/calibration.md; the arithmetic is ``contract.calibrated_probabilities``).
+* the target steps (regressors only, ``Ensemble.target_steps``) then map each output
+  element-wise, in order, the way a wrapper undoes its target transform (see
+  :data:`TARGET_OPS`); raw scores never pass through them.
 """
 from __future__ import annotations
 
@@ -58,6 +61,17 @@ CALIBRATION_METHODS = ("isotonic", "sigmoid")
 CALIBRATION_NORMALISATIONS = ("complement", "row_sum")
 
 LEAF = -1
+
+# Target steps: what a TransformedTargetRegressor's inverse does to each prediction, after
+# the post-transform, one step after the other, element-wise in float64 (docs/wrappers.md):
+#   {"op": "exp"}: exp(y) (numpy.exp); {"op": "expm1"}: exp(y) - 1 computed as numpy.expm1;
+#   {"op": "mul" | "add" | "sub" | "div", "values": [c_0, ..., c_{K-1}]}: y_k * c_k, y_k + c_k,
+#   y_k - c_k, y_k / c_k (one IEEE operation; one finite constant per output).
+# Every step is monotone (non-decreasing for exp, expm1, add, sub and for mul/div by a
+# positive constant; non-increasing for a negative one), so it never changes which side of
+# a threshold a prediction lands on relative to its neighbours' order.
+TARGET_OPS = ("exp", "expm1", "mul", "add", "sub", "div")
+TARGET_OPS_WITH_VALUES = ("mul", "add", "sub", "div")
 
 
 class ModelError(ValueError):
@@ -176,6 +190,8 @@ class Ensemble:
     # [{"method": "isotonic", "x": [...], "y": [...]} | {"method": "sigmoid", "a": a, "b": b},
     # one per class (one for two classes: the positive class)]}, ...]}. None: not calibrated.
     calibration: Optional[Dict[str, Any]] = None
+    # Element-wise steps applied to the transformed outputs of a regressor (TARGET_OPS).
+    target_steps: List[Dict[str, Any]] = field(default_factory=list)
     provenance: Dict[str, Any] = field(default_factory=dict)
     reference: Optional["Reference"] = None
 
@@ -258,6 +274,7 @@ class Ensemble:
             raise ModelError("%d output names for %d outputs" % (len(self.output_names), self.n_outputs))
         for index, tree in enumerate(self.trees):
             _check_tree(tree, index, self.features, self.n_outputs)
+        check_target_steps(self.target_steps, self.task, self.n_outputs)
         return self
 
 
@@ -321,6 +338,30 @@ def _check_calibrator(cal: Any, where: str) -> None:
     else:
         raise ModelError("%s: method is %r; expected one of %s" % (where, method, ", ".join(
             map(repr, CALIBRATION_METHODS))))
+
+
+def check_target_steps(steps: Any, task: str, n_outputs: int) -> None:
+    """Raise :class:`ModelError` unless ``steps`` are valid target steps (see TARGET_OPS)."""
+    if not isinstance(steps, list):
+        raise ModelError("target_steps must be a list, not %r" % (steps,))
+    if steps and task != "regression":
+        raise ModelError("target steps belong to regressors only (task is %r)" % task)
+    for i, step in enumerate(steps):
+        op = step.get("op") if isinstance(step, dict) else None
+        if op not in TARGET_OPS:
+            raise ModelError("target_steps[%d]: op %r; expected one of %s" % (i, op, ", ".join(TARGET_OPS)))
+        wanted = {"op", "values"} if op in TARGET_OPS_WITH_VALUES else {"op"}
+        if set(step) != wanted:
+            raise ModelError("target_steps[%d] (%s) takes the keys %s, not %s"
+                             % (i, op, sorted(wanted), sorted(step)))
+        if op in TARGET_OPS_WITH_VALUES:
+            values = step["values"]
+            if not (isinstance(values, list) and len(values) == n_outputs
+                    and all(isinstance(v, float) and math.isfinite(v) for v in values)):
+                raise ModelError("target_steps[%d] (%s) needs %d finite floats (one per output), not %r"
+                                 % (i, op, n_outputs, values))
+            if op == "div" and any(v == 0.0 for v in values):
+                raise ModelError("target_steps[%d] divides by zero" % i)
 
 
 def _check_source(f: Feature, fields: Optional[List[str]]) -> None:

@@ -394,11 +394,13 @@ class BatchModel:
         return raw
 
     def transform_raw(self, raw):
-        """The post-transformed outputs for raw scores (n, n_outputs), as the scorer's ``transform_raw``."""
+        """The post-transformed outputs for raw scores (n, n_outputs), as the scorer's ``transform_raw``
+        (then the target steps of a regressor)."""
         m = self.model
         if m.calibration is not None:
             return calibrated_probabilities(m.calibration, m.post_transform, m.softmax_sum, raw, len(m.classes))
-        return transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
+        out = transform(m.post_transform, raw, m.post_transform_params, m.softmax_sum)
+        return apply_target_steps(getattr(m, "target_steps", ()), out)
 
     def _run(self, records, finish):
         """``finish(raw_scores(prepare(records)))`` in steps of rows: each step of an ndarray
@@ -448,7 +450,7 @@ class BatchModel:
         """Predictions (regression, shape (n,) or (n, K)) or class labels (shape (n,))."""
         m = self.model
         if m.task == "regression":
-            out = self._run(X, lambda raw: transform(m.post_transform, raw))
+            out = self._run(X, self.transform_raw)
             return out[:, 0] if out.shape[1] == 1 else out
         classes = np.asarray(m.classes)
         return self._run(X, lambda raw: classes[self.class_index(raw)])
@@ -576,6 +578,30 @@ def calibrated_probabilities(calibration, post_transform, softmax_sum, raw, n_cl
         total += p
     total /= len(folds)
     return total
+def apply_target_steps(steps, values):
+    """Apply the scorer's target steps ((op, constants or None) pairs) to outputs (n, K), in
+    order, element-wise: numpy.exp / numpy.expm1 (the functions scikit-learn's
+    TransformedTargetRegressor calls) or one IEEE *, +, - or / by each output's constant."""
+    if not steps:
+        return values
+    y = np.array(values, dtype=np.float64)
+    with np.errstate(over="ignore"):
+        for op, c in steps:
+            if op == "exp":
+                y = np.exp(y)
+            elif op == "expm1":
+                y = np.expm1(y)
+            elif op == "mul":
+                y *= np.asarray(c, dtype=np.float64)
+            elif op == "add":
+                y += np.asarray(c, dtype=np.float64)
+            elif op == "sub":
+                y -= np.asarray(c, dtype=np.float64)
+            elif op == "div":
+                y /= np.asarray(c, dtype=np.float64)
+            else:
+                raise ValueError("unknown target step %r" % (op,))
+    return y
 
 
 class _Unprepared(object):

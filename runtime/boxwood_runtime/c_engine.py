@@ -16,7 +16,11 @@ Why this code computes the source's bits (docs/c-target.md):
   contraction (FMA) has nothing to fuse, and reassociation needs -ffast-math, which the
   file refuses (``__FAST_MATH__``); ``FLT_EVAL_METHOD`` must be 0 (no excess precision);
 * every loop is bounded by a table size or by the model's depth; no recursion, no malloc,
-  no stdio; only ``P_predict`` and ``P_label`` call libm (exp, pow).
+  no stdio; only ``P_predict`` and ``P_label`` call libm (exp, pow; expm1 for target steps);
+* a regressor's target steps (docs/wrappers.md) run after the post-transform, one IEEE
+  operation per step and output; each product or quotient is stored through a volatile
+  double before the next step, so no compiler fuses a multiplication with the addition
+  after it (scikit-learn's ``y *= scale_; y += mean_`` rounds twice).
 """
 
 ENGINE = r"""
@@ -329,6 +333,42 @@ static void PFX_exact(const double *acc, double *raw)
     }
 }
 
+#if PFXU_N_TARGET_STEPS > 0
+/* A regressor's target steps, after the post-transform, in order, for every output: 0 exp,
+   1 expm1, 2 multiply, 3 add, 4 subtract, 5 divide by the output's constant. */
+static void PFX_target(double *out)
+{
+    int s, k;
+    volatile double t;
+    for (s = 0; s < PFXU_N_TARGET_STEPS; ++s) {
+        for (k = 0; k < PFXU_N_RAW; ++k) {
+            double c = PFX_target_value[s * PFXU_N_RAW + k];
+            switch (PFX_target_op[s]) {
+            case 0:
+                t = exp(out[k]);
+                break;
+            case 1:
+                t = expm1(out[k]);
+                break;
+            case 2:
+                t = out[k] * c;
+                break;
+            case 3:
+                t = out[k] + c;
+                break;
+            case 4:
+                t = out[k] - c;
+                break;
+            default:
+                t = out[k] / c;
+                break;
+            }
+            out[k] = t;
+        }
+    }
+}
+#endif
+
 /* Predictions or class probabilities from raw scores. */
 static void PFX_transform(const double *acc, double *out)
 {
@@ -363,6 +403,9 @@ static void PFX_transform(const double *acc, double *out)
     PFX_softmax(out, PFXU_N_RAW);
 #elif PFXU_TRANSFORM == 6
     out[0] = -pow(2.0, -(PFXU_DENOMINATOR != 0.0 ? out[0] / PFXU_DENOMINATOR : 1.0));
+#endif
+#if PFXU_N_TARGET_STEPS > 0
+    PFX_target(out);
 #endif
 }
 

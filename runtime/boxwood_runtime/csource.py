@@ -35,6 +35,7 @@ TRANSFORM_CODES = {"identity": 0, "exp": 1, "logistic": 2, "logistic_double": 3,
                    "isolation": 6}
 TASK_CODES = {"regression": 0, "classification": 1, "outlier_detection": 2}
 BINARY_RULE_CODES = {None: 0, "raw_gt_0": 1, "raw_ge_0": 2}
+TARGET_STEP_CODES = {"exp": 0, "expm1": 1, "mul": 2, "add": 3, "sub": 4, "div": 5}  # c_engine's PFX_target
 ERROR_CODES = (("OK", 0, "the record was scored"),
                ("ERR_MISSING", 1, "a value is missing (NaN) and this model does not accept missing values"),
                ("ERR_INFINITE", 2, "a value is infinite, or outside float's range where the model compares "
@@ -264,6 +265,7 @@ def generate(model, prefix="model"):
         ("WEIGHT_TOTAL", c_double(params.get("weight_total", 0.0))),
         ("DENOMINATOR", c_double(params.get("denominator", 0.0))),
         ("OFFSET", c_double(params.get("offset", 0.0))),
+        ("N_TARGET_STEPS", str(len(model.target_steps))),
     ]
     lines.append("/* ---- model tables: what boxwood verify reads back ---- */")
     for name, v in macros:
@@ -279,6 +281,11 @@ def generate(model, prefix="model"):
     if model.combine == "mean":
         counts = [outputs.count(j) if trees else 0 for j in range(k)]
         _table(lines, _int_type(0, max(counts)), "PFX_trees_per_output", counts, str)
+    if model.target_steps:  # per step its op code, and one constant per output (0 for exp, expm1)
+        _table(lines, "uint8_t", "PFX_target_op", [TARGET_STEP_CODES[op] for op, _ in model.target_steps], str,
+               per_line=16)
+        _table(lines, "double", "PFX_target_value", [v for op, c in model.target_steps for v in (c or [0.0] * k)],
+               c_double, per_line=4)
     labels = []
     if has_cats:
         starts, values, unseen = [0], [], []

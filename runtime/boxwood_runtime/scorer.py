@@ -32,7 +32,9 @@ except ImportError:  # MicroPython ports built without array: plain lists
     _NODE_ARRAYS = (list,)
 
 FORMAT_NAME = "boxwood.tree-ensemble"
-FORMAT_VERSIONS = (1, 2, 3)  # 1: text trimmed, None = NaN; 2: text read as pandas does; 3: calibration
+# 1: text trimmed, None = NaN; 2: text read as pandas does; 3: 2 plus what version 2 lacks
+# (outputs.calibration, outputs.target_steps). A writer says 3 only when an artefact uses it.
+FORMAT_VERSIONS = (1, 2, 3)
 SCORER_VERSION = "0.1.0"
 DIGEST_KEY = "boxwood_digest"
 _DIGEST_PREFIX = b'{"' + DIGEST_KEY.encode() + b'":"sha256:'
@@ -544,6 +546,7 @@ class Model:
         self._read_inputs(_get(doc, "inputs", dict, "artefact"), limits)
         self._read_outputs(_get(doc, "outputs", dict, "artefact"), limits)
         self._read_ensemble(_get(doc, "ensemble", dict, "artefact"), limits)
+        self._read_target_steps(doc["outputs"])
 
     # -- artefact parts ----------------------------------------------------------
     def _read_inputs(self, inputs, limits):
@@ -755,6 +758,34 @@ class Model:
             self.max_depth = max(self.max_depth, depth)
             self.trees_per_output[output].append(root)
         self._plan = [(self.base_values[j], tuple(self.trees_per_output[j])) for j in range(k)]
+
+    def _read_target_steps(self, outputs):
+        """outputs.target_steps (format version 3): element-wise steps after the
+        post-transform, each {"op": "exp" | "expm1"} or {"op": "mul" | "add" | "sub" |
+        "div", "values": [one number per output]} (see apply_target_steps)."""
+        steps = outputs.get("target_steps", [])
+        _need(isinstance(steps, list), "outputs.target_steps must be a list")
+        _need(not steps or self.format_version >= 3, "outputs.target_steps needs format_version 3")
+        _need(not steps or self.task == "regression", "outputs.target_steps belong to regressors only")
+        self.target_steps = []
+        for i, step in enumerate(steps):
+            where = "outputs.target_steps[%d]" % i
+            _need(isinstance(step, dict), where + " must be an object")
+            op = step.get("op")
+            _need(op in _TARGET_OPS, "%s: unknown op %r" % (where, op))
+            if op in ("exp", "expm1"):
+                _need(sorted(step) == ["op"], where + " takes no other keys")
+                _need(op != "expm1" or _expm1 is not None, where + ": this platform's math module has no expm1")
+                self.target_steps.append((op, None))
+                continue
+            _need(sorted(step) == ["op", "values"], where + " takes the keys op and values")
+            values = step["values"]
+            _need(isinstance(values, list) and len(values) == self.n_outputs,
+                  "%s.values must hold %d numbers (one per output)" % (where, self.n_outputs))
+            values = [_number(v, "%s.values[%d]" % (where, j)) for j, v in enumerate(values)]
+            _need(all(v - v == 0.0 for v in values), where + ".values must be finite")
+            _need(op != "div" or all(v != 0.0 for v in values), where + " divides by zero")
+            self.target_steps.append((op, values))
 
     def _build_tree(self, tree, t, limits):
         """Check one tree's arrays and turn them into nested tuples (fast to walk).
@@ -1204,12 +1235,13 @@ class Model:
         return self._apply(records, self.proba_from_raw)
 
     def transform_raw(self, raw):
-        """Apply the post-transform to one list of raw scores (a calibrated classifier: its
-        calibrated probabilities of all classes)."""
+        """Apply the post-transform, then any target steps, to one list of raw scores (a
+        calibrated classifier: its calibrated probabilities of all classes)."""
         if self.calibration is not None:
             return calibrated_probabilities(self.calibration, self.post_transform, self.softmax_sum, raw,
                                             len(self.classes))
-        return transform(self.post_transform, raw, self.post_transform_params, self.softmax_sum)
+        out = transform(self.post_transform, raw, self.post_transform_params, self.softmax_sum)
+        return apply_target_steps(self.target_steps, out) if self.target_steps else out
 
     def decision_values(self, raw):
         """The decision values (always a list) for one list of raw scores (a calibrated
@@ -1369,6 +1401,40 @@ def _exp(v):
     try:
         return math.exp(v)
     except (OverflowError, ValueError):  # MicroPython raises ValueError on overflow
+        return _INF
+
+
+_expm1 = getattr(math, "expm1", None)  # MicroPython builds without special functions lack it
+_TARGET_OPS = ("exp", "expm1", "mul", "add", "sub", "div")
+
+
+def apply_target_steps(steps, values):
+    """Apply target steps (a list of (op, constants or None)) to one list of outputs, in
+    order, element-wise: exp and expm1 (math's), or one IEEE *, +, - or / by the output's
+    constant, as scikit-learn's TransformedTargetRegressor applies its inverse."""
+    out = list(values)
+    for op, c in steps:
+        if op == "exp":
+            out = [_exp(v) for v in out]
+        elif op == "expm1":
+            out = [_expm1_safe(v) for v in out]
+        elif op == "mul":
+            out = [v * c[j] for j, v in enumerate(out)]
+        elif op == "add":
+            out = [v + c[j] for j, v in enumerate(out)]
+        elif op == "sub":
+            out = [v - c[j] for j, v in enumerate(out)]
+        elif op == "div":
+            out = [v / c[j] for j, v in enumerate(out)]
+        else:
+            raise ValueError("unknown target step %r" % (op,))
+    return out
+
+
+def _expm1_safe(v):
+    try:
+        return _expm1(v)
+    except (OverflowError, ValueError):  # overflow: +inf, as numpy.expm1 gives
         return _INF
 
 

@@ -10,11 +10,12 @@ from __future__ import annotations
 from typing import Any
 
 from ..ir import Ensemble
-from . import boosting, calibration, forests, pipeline
+from . import boosting, calibration, forests, pipeline, wrappers
 from .common import UnsupportedModel
 from .loading import PICKLE_WARNING, ModelFileError, load_model_file
 
-READERS = (boosting.read, forests.read, pipeline.read, calibration.read)
+READERS = (boosting.read, forests.read, pipeline.read,
+           wrappers.reader((boosting.read, forests.read, pipeline.read)), calibration.read)
 
 SUPPORTED = (
     "sklearn.ensemble.GradientBoostingRegressor (loss: squared_error, absolute_error, huber, quantile)",
@@ -30,6 +31,9 @@ SUPPORTED = (
     "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(pipeline.SUPPORTED_STEPS),
     "sklearn.calibration.CalibratedClassifierCV (isotonic, sigmoid; cv folds, ensemble=False, FrozenEstimator) "
     "over one of the classifiers or pipelines above",
+    "sklearn.multioutput.MultiOutputRegressor around any regressor above (or a Pipeline ending in one)",
+    "sklearn.compose.TransformedTargetRegressor around any regressor above, with func/inverse_func "
+    "numpy.log/numpy.exp or numpy.log1p/numpy.expm1, or transformer: " + "; ".join(wrappers.SUPPORTED_TRANSFORMERS),
 )
 
 

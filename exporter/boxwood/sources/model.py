@@ -65,7 +65,11 @@ class SourceModel:
     def raw_from_matrix(self, X: Any, n: int) -> np.ndarray:
         """:meth:`raw` for the estimator's input ``X`` of ``n`` rows."""
         m = self.model
-        if self.ensemble.task == "outlier_detection":
+        from .wrappers import is_wrapper, raw_scores
+
+        if is_wrapper(m):  # MultiOutputRegressor, TransformedTargetRegressor: the inner raw scores
+            out = raw_scores(m, X)
+        elif self.ensemble.task == "outlier_detection":
             from .forests import isolation_path_sums
 
             out = isolation_path_sums(m, X)
@@ -138,9 +142,10 @@ class SourceEvaluator(Evaluator):
         if ensemble.calibration is not None:  # the first fold's classifier (all folds share its settings)
             model = model.calibrated_classifiers_[0].estimator
             model = getattr(model, "estimator", model) if type(model).__name__ == "FrozenEstimator" else model
-        final = model.steps[-1][1] if hasattr(model, "steps") else model
-        jobs = getattr(final, "n_jobs", None)
-        self.summation_order = "tree" if ensemble.combine == "sum" or jobs in (None, 1) else "any"
+        from .wrappers import tree_models  # the forests inside a pipeline or wrapper
+
+        jobs = {getattr(final, "n_jobs", None) for final in tree_models(model)}
+        self.summation_order = "tree" if ensemble.combine == "sum" or jobs <= {None, 1} else "any"
 
     def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
         # scikit-learn's finiteness check sums the rows; extreme probes overflow that sum

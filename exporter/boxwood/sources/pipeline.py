@@ -31,11 +31,11 @@ from typing import Any, Dict, List, Optional, Tuple
 
 
 from ..ir import Ensemble
-from . import boosting, forests
+from . import boosting, forests, wrappers
 from .common import UnsupportedModel, is_nan, plain
 
 # The estimators a pipeline may end in (a pipeline inside a pipeline is not read).
-FINAL_READERS = (boosting.read, forests.read)
+FINAL_READERS = (boosting.read, forests.read, wrappers.read)
 
 SUPPORTED_STEPS = ("ColumnTransformer (passthrough, drop, columns by name, index, mask)",
                    "SimpleImputer (constant, mean, median, most_frequent)",

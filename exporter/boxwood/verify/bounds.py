@@ -235,7 +235,86 @@ def value_bounds(ensemble: Any, outputs: List[OutputBound], artefact_params: Opt
     transformed = [ValueBound(o.name, o.transformed_abs, o.transformed_rel) for o in outputs]
     if ensemble.task == "classification" and len(outputs) == 1 and ensemble.classes:
         transformed[0].name = str(ensemble.classes[1])
+    lines += carry_target_steps(list(getattr(ensemble, "target_steps", None) or []), post, outputs, transformed)
     return exact_vals, transformed, lines
+
+
+def carry_target_steps(steps: List[Dict[str, Any]], post: str, outputs: List[OutputBound],
+                       transformed: List[ValueBound]) -> List[str]:
+    """Carry each transformed output's bound through a regressor's target steps (ir.TARGET_OPS),
+    updating ``transformed`` in place; return the derivation lines. Per output: A (absolute)
+    and R (relative) bounds and a range [lo, hi] holding both sides' values.
+
+    * both sides bit-identical before a *, +, - or / step (same operands, one correctly
+      rounded IEEE operation): still identical, A = R = 0;
+    * otherwise ``c*v`` / ``v/c``: A |c| + 2u |c| M (A / |c| + 2u M / |c|), R (1+u)/(1-u) more;
+      ``v+c`` / ``v-c``: A + 2u (M + |c|), R from A and the range (0 may be inside it);
+    * exp: e**a / e**s lies in [e**-A, e**A], so R = e**A (1+eps)/(1-eps) - 1 and
+      A = e**hi A + 2 eps e**hi; expm1 (assumed within eps like exp): |d expm1| <= e**hi, so
+      A = e**hi A + 2 eps max|expm1|, and |s| e**s / |expm1(s)| <= 1 + max(s, 0) gives
+      R' = (1 + max(hi, 0)) e**(M R) R, then (1+eps)/(1-eps) as for exp. M is the largest
+      |value| in the range."""
+    if not steps:
+        return []
+    lines = []
+    for j, (o, vb) in enumerate(zip(outputs, transformed)):
+        lo = min(o.source_range[0], o.artefact_range[0])
+        hi = max(o.source_range[1], o.artefact_range[1])
+        if post == "exp":
+            lo, hi = 0.0, exp_up(hi)
+        same = bool(o.exact and post == "identity" and vb.abs == 0)
+        a, r = _fin(vb.abs), (Fraction(0) if same else _fin(vb.rel))
+        for step in steps:
+            op = step["op"]
+            m = max(_fin(abs(lo)), _fin(abs(hi)))
+            if op in ("mul", "div", "add", "sub"):
+                c = Fraction(step["values"][j]) if j < len(step.get("values", [])) else Fraction(0)
+                if op == "mul":
+                    vals = sorted((float(Fraction(lo) * c) if math.isfinite(lo) else lo * float(c),
+                                   float(Fraction(hi) * c) if math.isfinite(hi) else hi * float(c)))
+                    a_new = abs(c) * a + 2 * _U * abs(c) * m
+                    r_new = _relative(r, _U, _U)
+                elif op == "div":
+                    vals = sorted((lo / float(c), hi / float(c)))
+                    a_new = a / abs(c) + 2 * _U * m / abs(c)
+                    r_new = _relative(r, _U, _U)
+                else:
+                    sign = 1 if op == "add" else -1
+                    vals = [lo + sign * float(c), hi + sign * float(c)]
+                    a_new = a + 2 * _U * (m + abs(c))
+                    r_new = None
+                lo, hi = numerics.next_down(vals[0]), up(vals[1])
+                if same:
+                    a, r = Fraction(0), Fraction(0)
+                else:
+                    a = a_new
+                    r = r_new if r_new is not None else _fin(identity_rel(round_up(a), (lo, hi)))
+                continue
+            e_hi = _fin(exp_up(hi))
+            if op == "exp":
+                r = _relative(expm1_up(round_up(a)), _EPS, _EPS)
+                a = e_hi * a + 2 * _EPS * e_hi
+                lo, hi = 0.0, exp_up(hi)
+            else:  # expm1
+                big = max(_fin(abs(math.expm1(lo)) if lo < 700 else INF), _fin(exp_up(hi)))
+                # relative: |expm1(a) - expm1(s)| <= e**xi |a - s|, xi <= s + |s| R, and
+                # |s| e**s / |expm1(s)| <= 1 + max(s, 0); so R grows by (1 + max(hi, 0)) e**(M R)
+                grow = r * (1 + _fin(max(hi, 0.0))) * _fin(exp_up(round_up(m * r))) if r < 1 else _fin(INF)
+                r = _relative(grow, _EPS, _EPS)
+                a = e_hi * a + 2 * _EPS * big
+                lo, hi = max(-1.0, -up(-math.expm1(lo))) if lo < 700 else 0.0, exp_up(hi)
+                if r >= 1:
+                    r = _fin(identity_rel(round_up(a), (lo, hi)))
+            same = False
+        vb.abs = 0.0 if same else round_up(a) + SUBNORMAL_SLACK
+        vb.rel = 0.0 if same else min(round_up(r), identity_rel(vb.abs, (lo, hi)))
+        vb.exact = same
+    lines.append("target steps %s after the post-transform, carried per output: *, /, +, - by a constant keep "
+                 "bit-identical inputs bit-identical (one correctly rounded operation each), else add 2u |value| "
+                 "(and scale); exp and expm1 (assumed within %d ulp like exp) grow the absolute bound by e**hi and "
+                 "the relative one as for the exp post-transform."
+                 % ([st["op"] for st in steps], ASSUMED_EXP_ULPS))
+    return lines
 
 
 def carry(post: str, outputs: List[OutputBound]) -> List[str]:
@@ -327,7 +406,8 @@ def implementation_allowance(post: str, n_outputs: int) -> float:
 
 def default_tolerances(post: str, n_outputs: int, ensemble: Any = None):
     """{kind: (abs_tol, rel_tol, why)} for "raw" and "transformed" outputs (``ensemble``: the
-    source, needed for a calibrated one)."""
+    source, needed for a calibrated one and for target steps: a regressor's ir.TARGET_OPS, where
+    an exp or expm1 allows as an exp post-transform)."""
     raw_why = ("raw scores: bit-identical expected (the same float64 comparisons and additions in the "
                "same order as the source)")
     tol = {"raw": (0.0, 0.0, raw_why)}
@@ -338,6 +418,9 @@ def default_tolerances(post: str, n_outputs: int, ensemble: Any = None):
                               "ulps, what two correct implementations can show on identical raw scores: "
                               "verify/calibration.py)" % (ab, max(rel, floor), TRANSFORMED_FLOOR_ULPS))
         return tol
+    target_steps = getattr(ensemble, "target_steps", None) or ()
+    if post == "identity" and any(st["op"] in ("exp", "expm1") for st in target_steps):
+        post = "exp"  # the same allowance: one exp-like call per value
     if post == "identity":
         tol["transformed"] = (0.0, 0.0, "identity post-transform: the output is the raw score, bit-identical "
                                         "expected")

@@ -96,7 +96,17 @@ def _run(ev: Any, rows: List[List[Any]], widths: Tuple[int, int], bar: _Progress
     def run(start: int, block: List[List[Any]]) -> List[Outputs]:
         # A block that raises is split in halves until the rows that raise alone are found.
         try:
-            return [ev.evaluate(block)]
+            got = ev.evaluate(block)
+            m = len(got.raw)
+            shapes = (np.asarray(got.raw).reshape(m, -1).shape[1], np.asarray(got.transformed).reshape(m, -1).shape[1])
+            if m and shapes != (n_exact, n_out):
+                # an artefact with other outputs than the source (e.g. a dropped target): every
+                # row is refused with the reason, so the empirical checks fail instead of crashing
+                why = ("the artefact gives %d exact values and %d outputs per row, the source %d and %d"
+                       % (shapes + (n_exact, n_out)))
+                refused.extend((start + i, why) for i in range(m))
+                return [Outputs(np.full((m, n_exact), np.nan), np.full((m, n_out), np.nan), [None] * m)]
+            return [got]
         except (ValueError, OverflowError, TypeError) as exc:
             if len(block) == 1:
                 refused.append((start, "%s: %s" % (type(exc).__name__, exc)))

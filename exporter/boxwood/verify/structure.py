@@ -50,6 +50,23 @@ __all__ = ["prove", "rounding_term", "Finding", "OutputBound", "Proof", "Side"]
 
 
 # ----------------------------------------------------------------------------- metadata
+def _compare_target_steps(proof: Proof, es: Ensemble, ea: Ensemble) -> None:
+    """Target steps (a regressor's inverse target transform, ir.TARGET_OPS) must be the same
+    operations with bit-identical constants: they act after the post-transform, on every
+    output, so any difference changes predictions and fails."""
+    ss, sa = list(getattr(es, "target_steps", None) or []), list(getattr(ea, "target_steps", None) or [])
+    ops_s, ops_a = [s["op"] for s in ss], [s["op"] for s in sa]
+    if ops_s != ops_a:
+        proof.add(Finding("target steps", "fail", "target steps: source %s, artefact %s"
+                          % (ops_s or "none", ops_a or "none")))
+        return
+    for i, (a, b) in enumerate(zip(ss, sa)):
+        va, vb = list(a.get("values") or []), list(b.get("values") or [])
+        if len(va) != len(vb) or not all(identical_bits(x, y) for x, y in zip(va, vb)):
+            proof.add(Finding("target steps", "fail", "target step %d (%s): constants %r in the source, %r in the "
+                              "artefact" % (i, a["op"], va, vb)))
+
+
 def _compare_metadata(proof: Proof, es: Ensemble, ea: Ensemble, src: Side, art: Side, input_precision: str) -> None:
     def fail(kind, msg):
         proof.add(Finding(kind, "fail", msg))
@@ -88,6 +105,7 @@ def _compare_metadata(proof: Proof, es: Ensemble, ea: Ensemble, src: Side, art: 
         fail("binary rule", "binary decision rule: source %s, artefact %s" % (es.binary_rule, ea.binary_rule))
     if es.post_transform != ea.post_transform:
         fail("post-transform", "post-transform: source %s, artefact %s" % (es.post_transform, ea.post_transform))
+    _compare_target_steps(proof, es, ea)
     if es.combine != ea.combine:
         fail("combine", "trees combined by %s in the source, by %s in the artefact" % (es.combine, ea.combine))
         proof.comparable = False

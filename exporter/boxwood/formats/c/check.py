@@ -48,6 +48,9 @@ def same_model(a: Ensemble, b: Ensemble) -> Optional[str]:
     if {k: float(v).hex() for k, v in a.post_transform_params.items()} != \
             {k: float(v).hex() for k, v in b.post_transform_params.items()}:
         return "post-transform parameters differ"
+    steps = lambda e: [(st["op"], bits(st.get("values") or [])) for st in e.target_steps]  # noqa: E731
+    if steps(a) != steps(b):
+        return "target steps differ"
     for fa, fb in zip(a.features, b.features):
         if (fa.name, fa.kind, fa.categories) != (fb.name, fb.kind, fb.categories):
             return "feature %r differs" % fa.name

@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any, Dict, List, Optional, Tuple, Union
 
 from boxwood_runtime.c_engine import ENGINE
-from boxwood_runtime.csource import BINARY_RULE_CODES, MARKER, TASK_CODES, TRANSFORM_CODES, engine_id
+from boxwood_runtime.csource import BINARY_RULE_CODES, MARKER, TARGET_STEP_CODES, TASK_CODES, TRANSFORM_CODES, engine_id
 
 from ...ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
 from ..registry import DamagedArtefact, FormatError
@@ -346,6 +346,7 @@ def to_ensemble(text: str, where: str = "C file") -> Ensemble:
     if tb.int("MAX_DEPTH") < depth:
         raise FormatError("%s: MAX_DEPTH is %d but a tree is %d deep: the code would refuse records"
                           % (where, tb.int("MAX_DEPTH"), depth))
+    target_steps = _target_steps(tb, k, where)
     classes = meta.get("classes")
     reference = None
     ref = meta.get("self_check")
@@ -363,9 +364,34 @@ def to_ensemble(text: str, where: str = "C file") -> Ensemble:
             accepts_infinity=tb.flag("ACCEPTS_INFINITY"), post_transform_params=params,
             softmax_sum="pairwise" if tb.flag("SOFTMAX_PAIRWISE") else "sequential",
             fields=list(fields) if has_steps else None, provenance=dict(meta.get("provenance") or {}),
-            reference=reference).check()
+            target_steps=target_steps, reference=reference).check()
     except (ModelError, TypeError, KeyError) as exc:
         raise FormatError("%s: the tables do not describe a valid ensemble: %s" % (where, exc))
+
+
+_TARGET_OPS = {v: k for k, v in TARGET_STEP_CODES.items()}
+
+
+def _target_steps(tb: "_Tables", k: int, where: str) -> List[Dict[str, Any]]:
+    """A regressor's target steps from N_TARGET_STEPS, target_op and target_value (the
+    constants of exp and expm1 steps must be 0: the code ignores them)."""
+    n = tb.int("N_TARGET_STEPS")
+    if n == 0:
+        return []
+    ops, values = tb.table("target_op", n), tb.table("target_value", n * k)
+    steps: List[Dict[str, Any]] = []
+    for s, code in enumerate(ops):
+        op = _TARGET_OPS.get(code)
+        if op is None:
+            raise FormatError("%s: target_op[%d] is %d, not a target step code" % (where, s, code))
+        c = values[s * k:(s + 1) * k]
+        if op in ("exp", "expm1"):
+            if any(v != 0.0 for v in c):
+                raise FormatError("%s: target step %d (%s) has constants" % (where, s, op))
+            steps.append({"op": op})
+        else:
+            steps.append({"op": op, "values": [float(v) for v in c]})
+    return steps
 
 
 def _acyclic(tree: Tree) -> bool:

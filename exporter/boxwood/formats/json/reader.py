@@ -20,6 +20,13 @@ def _num(v: Any) -> float:
     return float(v)
 
 
+def _target_step(step: Dict[str, Any]) -> Dict[str, Any]:
+    out: Dict[str, Any] = {"op": step["op"]}
+    if "values" in step:
+        out["values"] = [_num(v) for v in step["values"]]
+    return out
+
+
 def from_document(doc: Dict[str, Any]) -> Ensemble:
     """Map an artefact document (already verified by the device loader) onto an Ensemble."""
     inputs, outputs, ens = doc["inputs"], doc["outputs"], doc["ensemble"]
@@ -64,6 +71,7 @@ def from_document(doc: Dict[str, Any]) -> Ensemble:
         accepts_infinity=inputs["accepts_infinity"],
         fields=inputs.get("fields"),
         post_transform_params={k: _num(v) for k, v in outputs.get("post_transform_params", {}).items()},
+        target_steps=[_target_step(st) for st in outputs.get("target_steps", [])],
         provenance=doc.get("provenance", {}),
         reference=reference,
         calibration=_calibration(outputs.get("calibration")),

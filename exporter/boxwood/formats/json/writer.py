@@ -26,10 +26,19 @@ FORMAT_VERSION_3 = 3
 
 
 def needs_format_3(ensemble: Ensemble) -> bool:
-    """True when the artefact must say format_version 3 (older scorers then refuse it with
-    their "format_version ... is not one this scorer reads" message): it carries calibration
-    (``outputs.calibration``)."""
-    return ensemble.calibration is not None
+    """True when ``ensemble`` uses something format version 2 cannot carry (then the
+    artefact says 3, and older scorers refuse it with their "format_version ... is not one
+    this scorer reads" message); False keeps version 2 and the bytes of every older
+    artefact. Today: calibration (``outputs.calibration``) and target steps
+    (``outputs.target_steps``)."""
+    return ensemble.calibration is not None or bool(ensemble.target_steps)
+
+
+def _target_step(step: Dict[str, Any]) -> Dict[str, Any]:
+    out: Dict[str, Any] = {"op": step["op"]}
+    if "values" in step:
+        out["values"] = [number(v) for v in step["values"]]
+    return out
 
 
 def _calibration(cal: Dict[str, Any]) -> Dict[str, Any]:
@@ -176,6 +185,8 @@ def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]
         outputs["post_transform_params"] = {k: number(v) for k, v in sorted(ensemble.post_transform_params.items())}
     if ensemble.calibration is not None:
         outputs["calibration"] = _calibration(ensemble.calibration)
+    if ensemble.target_steps:
+        outputs["target_steps"] = [_target_step(st) for st in ensemble.target_steps]
     doc: Dict[str, Any] = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION_3 if needs_format_3(ensemble) else FORMAT_VERSION,

@@ -187,6 +187,43 @@ def refuse_unsupported(ensemble: Ensemble) -> None:
                          "exact ai.onnx.ml form boxwood builds yet; export to JSON (boxwood export MODEL -o "
                          "model.json) or C instead" % (len(ensemble.calibration["folds"]), ", ".join(sorted({
                              c["method"] for f in ensemble.calibration["folds"] for c in f["calibrators"]}))))
+    refuse_target_steps(ensemble)
+
+
+# Target steps (ir.TARGET_OPS) as standard ONNX ops on double tensors: each is one IEEE
+# operation (Mul, Add, Sub, Div by a constant per output) or exp (Exp). expm1 has no standard
+# operator, and Exp followed by Sub 1 is not expm1 (it loses the digits of results near 0).
+TARGET_STEP_OPS = {"exp": "Exp", "mul": "Mul", "add": "Add", "sub": "Sub", "div": "Div"}
+
+
+def refuse_target_steps(ensemble: Ensemble, float_type_is_double: bool = True) -> None:
+    """Raise ModelError for target steps an ONNX graph cannot compute exactly: expm1 (no
+    operator), and any step in the legacy float32 graph (its constants and arithmetic would be
+    float32)."""
+    steps = ensemble.target_steps or []
+    wrapper = (ensemble.provenance or {}).get("estimator", "the model")
+    for i, st in enumerate(steps):
+        if st["op"] not in TARGET_STEP_OPS:
+            raise ModelError("%s: target step %d (%s, the inverse of a TransformedTargetRegressor) has no exact ONNX "
+                             "operator (Exp then Sub 1 is not expm1); export it as JSON or C instead"
+                             % (wrapper, i, st["op"]))
+    if steps and not float_type_is_double:
+        raise ModelError("%s: the legacy float32 ONNX graph cannot apply target steps (a TransformedTargetRegressor's "
+                         "inverse) exactly; write the exact graph instead (without --legacy-float32)" % wrapper)
+
+
+def _target_steps(kit: GraphKit, ensemble: Ensemble, transformed: str) -> str:
+    """The target steps after the post-transform; the last writes the output "prediction"."""
+    steps = ensemble.target_steps
+    out = transformed
+    for i, st in enumerate(steps):
+        name = "prediction" if i == len(steps) - 1 else None
+        if st["op"] == "exp":
+            out = kit.op("Exp", [out], "target_exp", output=name)
+        else:
+            c = kit.const("target_%s_values" % st["op"], [float(v) for v in st["values"]])
+            out = kit.op(TARGET_STEP_OPS[st["op"]], [out, c], "target_%s" % st["op"], output=name)
+    return out
 
 
 def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
@@ -196,7 +233,11 @@ def add_outputs(kit: GraphKit, ensemble: Ensemble, raw: str) -> List[Any]:
     post = ensemble.post_transform
     raw_info = helper.make_tensor_value_info(RAW_NAME, kit.float_type, ["N", k])
     if ensemble.task == "regression":
-        if post == "exp":
+        if ensemble.target_steps:  # post-transform, then the steps (docs/wrappers.md)
+            refuse_target_steps(ensemble, kit.float_type == T.DOUBLE)
+            first = kit.op("Exp" if post == "exp" else "Identity", [raw], "transformed")
+            _target_steps(kit, ensemble, first)
+        elif post == "exp":
             kit.op("Exp", [raw], "exp", output="prediction")
         else:
             kit.op("Identity", [raw], "prediction", output="prediction")
@@ -332,6 +373,8 @@ def metadata(ensemble: Ensemble, leading_base_trees: int, input_type: str, varia
         "category_code_offset": CODE_OFFSET,
         "post_transform_params": dict(ensemble.post_transform_params),
     }
+    if ensemble.target_steps:
+        semantics["target_steps"] = [dict(st) for st in ensemble.target_steps]
     meta = {
         META_FORMAT: META_FORMAT_VALUE,
         META_VERSION: __version__,

@@ -352,10 +352,12 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
                 info["divide" if step == "Div" else "add"] = np.asarray(c, dtype=np.float64).ravel()
                 raw = u.output[0]
     info["raw"] = raw
+    steps, step_nodes = target_steps_of(graph, raw) if raw is not None else ([], set())
+    info["target_steps"] = steps
     transforms = {"Exp": "exp", "Sigmoid": "logistic", "Softmax": "softmax"}
     found = set()
     for n in down:
-        if n.op_type in transforms:
+        if n.op_type in transforms and id(n) not in step_nodes:
             kind = transforms[n.op_type]
             src = graph.producer.get(n.input[0])
             if kind == "exp" and src is not None and src.op_type == "Neg":
@@ -405,6 +407,42 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
                     raise OnnxReadError("%s must compare the raw score with the constant 0" % node_label(n))
                 info["binary_rule"] = "raw_gt_0" if n.op_type == "Greater" else "raw_ge_0"
     return info
+
+
+_STEP_OPS = {"Exp": "exp", "Mul": "mul", "Add": "add", "Sub": "sub", "Div": "div"}
+
+
+def target_steps_of(graph: Graph, raw: str) -> Tuple[List[Dict[str, Any]], set]:
+    """A regressor's target steps (docs/wrappers.md), read from the graph: the ops between the
+    post-transform node (the node that takes the raw score: Identity or Exp) and the graph
+    output "prediction", each an Exp or a Mul / Add / Sub / Div of the running value (first
+    input) by a constant (second input) with one value per output or one for all. Returns
+    (steps in order, the ids of their nodes); none when "prediction" comes straight from the
+    post-transform (or is no graph output)."""
+    if "prediction" not in graph.outputs:
+        return [], set()
+    steps: List[Dict[str, Any]] = []
+    nodes = set()
+    node = graph.producer.get("prediction")
+    while node is not None and raw not in node.input:
+        op = _STEP_OPS.get(node.op_type)
+        if op is None or node.domain not in ("", "ai.onnx"):
+            raise OnnxReadError("%s computes the prediction after the post-transform; boxwood reads Exp, or Mul, "
+                                "Add, Sub and Div by a constant there" % node_label(node))
+        if op == "exp":
+            steps.append({"op": "exp"})
+        else:
+            c = graph.const(node.input[1]) if len(node.input) == 2 else None
+            if c is None or graph.const(node.input[0]) is not None:
+                raise OnnxReadError("%s must %s the running prediction (first input) by a constant (second input)"
+                                    % (node_label(node), op))
+            steps.append({"op": op, "values": [float(v) for v in np.asarray(c, dtype=np.float64).ravel()]})
+        nodes.add(id(node))
+        node = graph.producer.get(node.input[0])
+    if node is None and steps:
+        raise OnnxReadError("the prediction's steps do not start at the raw score")
+    steps.reverse()
+    return steps, nodes
 
 
 def _scalar(graph: Graph, node: Any, other_than: str) -> Optional[float]:
@@ -519,6 +557,14 @@ def read_onnx(source: Any) -> Ensemble:
             raise OnnxReadError("the base values added after %s do not match its %d targets" % (where, k))
         base = [float(b + a) for b, a in zip(base, add)]
 
+    steps = info.get("target_steps") or []
+    for st in steps:  # a constant given once for all outputs applies to each
+        if "values" in st and len(st["values"]) == 1 and k > 1:
+            st["values"] = st["values"] * k
+    if semantics and semantics.get("target_steps", []) != steps and (steps or semantics.get("target_steps")):
+        raise OnnxReadError("metadata boxwood.semantics says target_steps=%r but the graph does %r"
+                            % (semantics.get("target_steps"), steps))
+
     # task, classes and the binary rule
     classes = info["classes"]
     task = "classification" if classes is not None else "regression"
@@ -598,6 +644,7 @@ def read_onnx(source: Any) -> Ensemble:
         # elsewhere does not say: its Softmax op adds in the runtime's own order)
         softmax_sum=semantics.get("softmax_sum") if semantics.get("softmax_sum") in ("sequential", "pairwise")
         else "sequential",
+        target_steps=steps,
         provenance=provenance,
     )
     ref = meta.get("boxwood.reference")
