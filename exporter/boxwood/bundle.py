@@ -45,7 +45,7 @@ ARTEFACT = "model.json"
 MANIFEST = "manifest.json"
 README = "README.txt"
 ENTRY = "box.py"
-RUNTIME_FILES = ("scorer.py", "stream.py", ENTRY)  # copied as they are from boxwood_runtime
+RUNTIME_FILES = ("scorer.py", "stream.py", "signature.py", ENTRY)  # copied as they are from boxwood_runtime
 FOOTPRINT_CHOICES = ("auto", "require", "skip")
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)
 
