@@ -270,7 +270,7 @@ def public_key_from_pem(text):
             inside = []
         elif line == PEM_END and inside is not None:
             try:
-                der = binascii.a2b_base64("".join(inside))
+                der = binascii.a2b_base64("".join(inside).encode("ascii"))  # MicroPython: bytes only
             except Exception:  # binascii.Error (CPython) / ValueError (MicroPython)
                 raise SignatureError("a PUBLIC KEY block is not valid base64")
             if len(der) != 44 or der[:12] != SPKI_PREFIX:
