@@ -76,6 +76,7 @@ def raw_public(private):
 def test_sha512_nist_examples(message, want):
     assert hashlib.sha512(message).hexdigest() == want  # the remembered value, confirmed by hashlib
     assert Sha512(message).digest().hex() == want
+    assert sha512(message).hex() == want  # what the verifier calls (hashlib's here)
 
 
 def test_sha512_against_hashlib_at_every_padding_boundary():

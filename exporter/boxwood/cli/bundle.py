@@ -3,6 +3,7 @@
 from pathlib import Path
 
 from ..sources import PICKLE_WARNING
+from ..sources.loading import refuse_data_name
 from .common import CheckFailed, UsageError, existing_file, footprint_text, kind_text, load_artefact, positive_int
 
 
@@ -51,6 +52,8 @@ def run(args):
     if args.target == "python" and args.c_prefix is not None:
         raise UsageError("--c-prefix applies to --target c only")
     kind = existing_file(args.source, "source")
+    if kind == "pickle":
+        refuse_data_name(args.source)  # the name and the content must agree: never unpickle model.json
     if kind in ("json-artefact", "json"):
         load_artefact(args.source)  # a damaged artefact or a failed self-check: exit 1; not an artefact: 2
     elif kind in ("csv", "jsonl", "text", "zip"):
