@@ -670,7 +670,7 @@ def cmd_score(folder, args, trust=None):
     stream = modules["stream.py"]
     if in_name != "-" and _size(in_name) is None:
         raise Usage("input file %r not found" % in_name)
-    src = _open_text(in_name, "r")
+    src = _open_input(in_name)  # bytes: stream.py decodes each line (bad bytes: an error row for that line)
     try:
         dst = _open_text(out_name, "w")
         try:
@@ -694,11 +694,20 @@ def _done(fh, name):
     """Close a file we opened; flush and let go of a wrapper around stdin/stdout."""
     if name != "-":
         fh.close()
+    elif fh is getattr(sys.stdin, "buffer", None):
+        pass
     elif fh is not sys.stdin and fh is not sys.stdout:
         fh.flush()
         fh.detach()  # closing the wrapper would close stdin/stdout under it
     else:
         getattr(fh, "flush", lambda: None)()
+
+
+def _open_input(name):
+    """A file (or stdin for "-") to read bytes from, or stdin's text where it has no bytes."""
+    if name == "-":
+        return getattr(sys.stdin, "buffer", None) or sys.stdin
+    return open(name, "rb")
 
 
 def _open_text(name, mode):
