@@ -119,7 +119,11 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     if csv is None and out_fmt == "csv":
         raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
                           "use JSON Lines")
-    fmt, id_name, rows, first = read_records(model, infile, fmt, id_column, delimiter)
+    try:
+        fmt, id_name, rows, first = read_records(model, infile, fmt, id_column, delimiter)
+    except UnicodeError as exc:  # a text-mode input that is not UTF-8, before any row
+        raise StreamError("the input is not UTF-8 text (%s); nothing was written (open the input in binary mode "
+                          "to get error rows instead)" % (exc,))
     values = output_columns(model, raw_scores)
     if id_name is not None and (id_name in values or id_name == ERROR_COLUMN):
         raise StreamError("the id column %r has the name of an output column (%s)"
@@ -182,11 +186,10 @@ def read_records(model, infile, fmt="auto", id_column=None, delimiter=","):
     lines = _Lines(infile)
     head = []  # lines read while looking for the first non-blank one
     first = None
-    for item in lines:
+    for item in lines:  # the first non-blank line that is text (an undecodable one is a row of its own)
         head.append(item)
-        text = item[1] if item[1] is not None else item[2].decode("utf-8", "replace")
-        if text.strip():
-            first = text
+        if item[1] is not None and item[1].strip():
+            first = item[1]
             break
     lines.push(head)
     if fmt == "auto":
