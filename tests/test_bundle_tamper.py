@@ -332,8 +332,9 @@ def test_damaged_signature_file_fails(made, tmp_path, change):
 def test_trust_file_inside_the_bundle_is_refused(made, tmp_path):
     folder = copy_of(made / "signed", tmp_path)
     shutil.copy(made / "keys" / "owner.pub", folder / "owner.pub")
-    done = box(folder, "check", "--trust", str(folder / "owner.pub"))
-    assert done.returncode == 2 and "is in the bundle folder" in done.stderr
+    for given in (str(folder / "owner.pub"), "copy/owner.pub", "copy/../copy/owner.pub"):  # box() runs in folder/..
+        done = box(folder, "check", "--trust", given)
+        assert done.returncode == 2 and "is in the bundle folder" in done.stderr, given
 
 
 def test_bad_trust_files_are_usage_errors(made, tmp_path):
@@ -398,3 +399,26 @@ def test_signed_check_on_micropython(made, tmp_path):
     assert done.returncode == 1 and "manifest.sig does not verify with the trusted key" in done.stderr
     done = run(made / "plain", "check")
     assert done.returncode == 1 and "the bundle is not signed" in done.stderr
+
+
+def test_installed_box_py_uses_its_own_verifier(made, tmp_path):
+    """The documented limit and its remedy: a bundle whose signature.py always says yes (and whose
+    manifest matches it) fools its own box.py, but not a box.py installed outside the folder."""
+    installed = tmp_path / "opt"
+    installed.mkdir()
+    for name in ("box.py", "signature.py"):
+        shutil.copy(made / "signed" / name, installed / name)
+    folder = copy_of(made / "signed", tmp_path)
+    shutil.copy(made / "other_model" / "model.json", folder / "model.json")
+    shutil.copy(made / "other_model" / "README.txt", folder / "README.txt")
+    (folder / "signature.py").write_text((folder / "signature.py").read_text()
+                                         + "\n\ndef verify(public_key, message, signature):\n    return True\n")
+    write_manifest(folder)
+    trust = str(made / "keys" / "owner.pub")
+    fooled = box(folder, "check", "--trust", trust)
+    assert fooled.returncode == 0  # the planted verifier in the bundle says yes to its own box.py
+    failed(box(folder, "--bundle", str(folder), "check", "--trust", trust, script=installed / "box.py"),
+           "manifest.sig does not verify with the trusted key")
+    done = box(made / "signed", "--bundle", str(made / "signed"), "check", "--trust", trust,
+               script=installed / "box.py")
+    assert done.returncode == 0 and "signed by trusted key" in done.stdout

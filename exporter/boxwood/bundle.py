@@ -192,8 +192,13 @@ Cautions
   standards and local codes that apply to the installation; this model is not one.
 - Test a retrained model on the target hardware before it is put in service, and
   keep a safe fallback for when the scorer refuses a record or the bundle.
-- manifest.json detects damaged, truncated, missing or mixed-up files. It is not a
-  signature: protect the folder from deliberate tampering by other means.
+- manifest.json detects damaged, truncated, missing, extra or mixed-up files. Alone
+  it is not a signature. If this bundle holds manifest.sig, install the maker's
+  public key outside this folder (/etc/boxwood/trusted.pub, or pass
+  --trust FILE): check then requires a valid Ed25519 signature of manifest.json.
+  Against someone who can write this folder, run a box.py installed elsewhere:
+  python3 /opt/boxwood/box.py --bundle THIS_FOLDER check --trust FILE.
+- Keep only the listed files in this folder (an extra file fails check).
 """.format(task=model.task, n_features=model.n_features, outputs=outputs, trees=model.n_trees,
            nodes=model.n_nodes, depth=model.max_depth, size=foot["artefact_bytes"],
            inputs=", ".join(getattr(model, "input_names", model.feature_names)), memory=memory)

@@ -270,7 +270,16 @@ def trusted_keys(path, folder):
     bundle proves nothing: whoever changes the bundle changes that key too)."""
     cut = max(path.rfind("/"), path.rfind("\\"))
     where = path[:cut] if cut > 0 else ("/" if cut == 0 else ".")
-    if where.rstrip("/\\") == folder.rstrip("/\\") or (cut < 0 and folder in ("", ".")):
+    inside = _same_folder(where, folder)
+    try:
+        import os.path  # CPython: compare real paths (MicroPython: names only)
+
+        real = getattr(os.path, "realpath", None)  # MicroPython's os.path, where there is one, lacks it
+    except ImportError:
+        real = None
+    if real is not None:
+        inside = inside or real(where) == real(folder)
+    if inside:
         raise Usage("the trusted key %r is in the bundle folder: a key that comes with the bundle proves "
                     "nothing; install it outside the folder (e.g. %s)" % (path, TRUST_FILE))
     data = _read_file(path, "trusted key file %r" % path, SMALL_CAP, fail=Usage)

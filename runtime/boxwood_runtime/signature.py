@@ -36,10 +36,7 @@ try:
     import hashlib
 except ImportError:  # MicroPython builds without hashlib
     hashlib = None
-try:
-    import binascii
-except ImportError:  # MicroPython names it ubinascii on old builds
-    import ubinascii as binascii
+import binascii  # MicroPython 1.2x has it under this name too
 
 __all__ = ["verify", "sha512", "Sha512", "public_key_from_pem", "key_id", "SignatureError"]
 
