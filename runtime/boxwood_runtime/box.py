@@ -163,9 +163,10 @@ def _not_regular(mode):
     return None if kind == 0o100000 else _KINDS.get(kind, "not a regular file")
 
 
-def _read_file(path, name, limit, fail=None):
+def _read_file(path, name, limit, fail=None, hasher=None):
     """The bytes of ``path`` (shown as ``name``), read only if it is a regular file and at
-    most ``limit`` bytes; None when it is not there. Anything else raises ``fail`` (CheckFailed)
+    most ``limit`` bytes; None when it is not there. With ``hasher``, the bytes go into it as
+    they are read and only their number is returned. Anything else raises ``fail`` (CheckFailed)
     with the reason: a FIFO, device or folder is never opened for reading (it could block or
     never end), and a file that grows past ``limit`` is not read to its end."""
     import os
@@ -191,19 +192,33 @@ def _read_file(path, name, limit, fail=None):
     else:  # MicroPython: no os.open
         fh = open(path, "rb")
     try:
-        parts = []
-        got = 0
-        while got <= limit:
-            chunk = fh.read(min(65536, limit + 1 - got))
-            if not chunk:
-                break
-            parts.append(chunk)
-            got += len(chunk)
+        if hasher is not None:  # hash as it is read, keep nothing (MicroPython: little memory)
+            got = 0
+            while got <= limit:
+                chunk = fh.read(min(16384, limit + 1 - got))
+                if not chunk:
+                    break
+                hasher.update(chunk)
+                got += len(chunk)
+            data = got
+        else:  # one read of the size stat gave (one allocation), then make sure that was all
+            want = min(st[6], limit) + 1
+            data = fh.read(want) or b""
+            got = len(data)
+            if got == want and got <= limit:  # it grew while being read: read on, bounded
+                parts = [data]
+                while got <= limit:
+                    chunk = fh.read(min(65536, limit + 1 - got))
+                    if not chunk:
+                        break
+                    parts.append(chunk)
+                    got += len(chunk)
+                data = b"".join(parts)
     finally:
         fh.close()
     if got > limit:
         raise fail("%s grew past the %d bytes allowed while it was read" % (name, limit))
-    return b"".join(parts)
+    return data
 
 
 def _hex(digest):
@@ -387,14 +402,16 @@ def verify_files(folder, manifest, keep=()):
     kept = {}
     for name in sorted(files):
         entry = files[name]
-        data = _read_file(_join(folder, name), name, entry["bytes"] if entry["bytes"] < HARD_CAP else HARD_CAP,
-                          fail=_SizeOrKind(name, entry["bytes"]))
+        hasher = None if name in keep else hashlib.sha256()
+        data = _read_file(_join(folder, name), name, entry["bytes"], fail=_SizeOrKind(name, entry["bytes"]),
+                          hasher=hasher)
         if data is None:
             raise CheckFailed("missing file: %s (listed in %s)" % (name, MANIFEST))
-        if len(data) != entry["bytes"]:
+        size = data if hasher is not None else len(data)
+        if size != entry["bytes"]:
             raise CheckFailed("%s has %d bytes, %s says %d (changed, truncated or damaged)"
-                              % (name, len(data), MANIFEST, entry["bytes"]))
-        digest = _hex(hashlib.sha256(data).digest())
+                              % (name, size, MANIFEST, entry["bytes"]))
+        digest = _hex((hasher or hashlib.sha256(data)).digest())
         if digest != entry["sha256"]:
             raise CheckFailed("%s: sha256 %s, %s says %s (changed or damaged)"
                               % (name, digest, MANIFEST, entry["sha256"]))
@@ -498,7 +515,7 @@ def load_model(folder, manifest, unknown_category="error", trust=None, manifest_
     trust_path = _trust_options(trust)
     trust_text = trusted_keys(trust_path, folder) if trust_path is not None else None
     name = manifest["artefact"]["file"]
-    wanted = ["scorer.py", name, "signature.py"] + list(keep)
+    wanted = ["scorer.py", name] + (["signature.py"] if trust_text is not None else []) + list(keep)
     n_files, kept = verify_files(folder, manifest, keep=wanted)  # hashes only: nothing runs yet
     signed = ""
     if trust_text is not None:
