@@ -83,11 +83,11 @@ def run_dask(args):
         scale.expand(args.input)
     except ValueError as exc:
         raise UsageError(str(exc))
-    progress = None
-    if sys.stderr.isatty():
-        def progress(done, total):
-            sys.stderr.write("\r%s: %d/%d partitions" % (PROG, done, total))
-            sys.stderr.flush()
+    def show_partitions(done, total):
+        sys.stderr.write("\r%s: %d/%d partitions" % (PROG, done, total))
+        sys.stderr.flush()
+
+    progress = show_partitions if sys.stderr.isatty() else None
     start = time.perf_counter()
     client = connect(args.dask, args.workers)
     try:
@@ -137,11 +137,11 @@ def run(args):
     if ("-" not in (args.input, args.output) and os.path.exists(args.output)
             and os.path.samefile(args.input, args.output)):
         raise UsageError("the output %r is the input file; write to another file" % args.output)
-    progress = None
-    if sys.stderr.isatty():
-        def progress(rows):
-            sys.stderr.write("\r%s: %d rows" % (PROG, rows))
-            sys.stderr.flush()
+    def show_rows(rows):
+        sys.stderr.write("\r%s: %d rows" % (PROG, rows))
+        sys.stderr.flush()
+
+    progress = show_rows if sys.stderr.isatty() else None
     start = time.perf_counter()
     try:
         with binary_input(args.input) as src, text_output(args.output) as dst:
