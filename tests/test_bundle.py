@@ -31,7 +31,7 @@ from boxwood.cli import main
 from boxwood_runtime.scorer import artefact_bytes
 from test_stream import check_against_sklearn, csv_text, ids_for, jsonl_text, parse_csv, parse_jsonl
 
-FILES = ["README.txt", "box.py", "manifest.json", "model.json", "scorer.py", "stream.py"]
+FILES = ["README.txt", "box.py", "manifest.json", "model.json", "scorer.py", "signature.py", "stream.py"]
 CASE = "hgbr_categorical_nan"  # string categories, NaN routed per node
 
 
@@ -130,7 +130,7 @@ def test_intact_bundle_checks_under_isolated_cpython(made, tmp_path):
     copy = copy_of(folder, tmp_path)
     done = box(copy, "check", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
-    assert done.stdout.count("\n") == 1 and done.stdout.startswith("ok: 5 files match manifest.json")
+    assert done.stdout.count("\n") == 1 and done.stdout.startswith("ok: 6 files match manifest.json")
     assert "reference rows reproduced" in done.stdout
     version = box(copy, "--version")
     assert version.returncode == 0
@@ -264,8 +264,9 @@ def _need_micropython():
         pytest.skip(reason)
 
 
-def run_box_micropython(folder, *args):
+def run_box_micropython(folder, *args, data=None):
     files = {"/box/" + p.name: p.read_bytes() for p in Path(folder).iterdir() if p.is_file()}
+    files.update(data or {})  # input files, outside the bundle folder
     code = ("import sys\nsys.path.insert(0, '/box')\nimport box\n"
             "raise SystemExit(box.main(%r))\n" % (list(args) + ["--bundle", "/box"]))
     return mp.run(code, files)
@@ -276,13 +277,13 @@ def test_check_and_score_on_micropython_agree_with_cpython(made, tmp_path):
     case, folder = made
     done = run_box_micropython(folder, "check")
     assert done.returncode == 0, done.stderr
-    assert done.stdout.startswith("ok: 5 files match manifest.json") and "on MicroPython 1." in done.stdout
+    assert done.stdout.startswith("ok: 6 files match manifest.json") and "on MicroPython 1." in done.stdout
     names = [f["name"] for f in json.loads((folder / "model.json").read_bytes())["inputs"]["features"]]
     copy = copy_of(folder, tmp_path)
     text = jsonl_text(names, case.rows[:60], list(range(60))) + '{"id": 60, "age": "warm"}\n'
-    (copy / "in.jsonl").write_text(text)
-    mine = run_box_micropython(copy, "score", "/box/in.jsonl")
-    cpython = box(copy, "score", str(copy / "in.jsonl"))
+    (tmp_path / "in.jsonl").write_text(text)  # outside the bundle: an extra file there fails check
+    mine = run_box_micropython(copy, "score", "/data/in.jsonl", data={"/data/in.jsonl": text})
+    cpython = box(copy, "score", str(tmp_path / "in.jsonl"))
     assert mine.returncode == cpython.returncode == 2
     got, want = parse_jsonl(mine.stdout), parse_jsonl(cpython.stdout)
     assert len(got) == len(want) == 61
@@ -347,6 +348,7 @@ for i in range(n):
 # process would report pytest's size.
 _MEASURED = r"""
 import sys
+sys.dont_write_bytecode = True  # no __pycache__ in the bundle folder: an extra entry fails check
 sys.path.insert(0, sys.argv[1])
 import box
 code = box.main(["score", "-", "-o", sys.argv[2], "--bundle", sys.argv[1]])

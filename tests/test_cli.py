@@ -17,6 +17,7 @@ import pytest
 
 import zoo
 from boxwood.cli import main
+from boxwood.sources import PICKLE_WARNING
 from boxwood_runtime.scorer import artefact_bytes
 from test_stream import check_against_sklearn, csv_text, ids_for, jsonl_text, parse_csv, parse_jsonl
 
@@ -107,6 +108,8 @@ def test_export_refuses_unsupported_models_with_the_list(tmp_path, capsys):
         joblib.dump(model, path)
         assert main(["export", str(path), "-o", str(tmp_path / "m.json")]) == 2
         err = capsys.readouterr().err
+        warning, err = err.split("\n", 1)  # loading a pickle: the warning line first (sources.loading)
+        assert warning.startswith("boxwood: warning: loading ") and PICKLE_WARNING in warning
         assert err.startswith("boxwood: error: ")
         assert "sklearn.ensemble.HistGradientBoostingClassifier" in err  # the supported list
         assert "Traceback" not in err

@@ -27,7 +27,7 @@ MAX_LINES = 700
 LAYERS = [
     ("boxwood", "boxwood.ir", "boxwood.numerics", "boxwood.schema", "boxwood.pages"),
     ("boxwood.contract", "boxwood.reference_rows"),
-    ("boxwood.sources", "boxwood.formats", "boxwood.micropython"),
+    ("boxwood.sources", "boxwood.formats", "boxwood.micropython", "boxwood.signing"),
     ("boxwood.export", "boxwood.verify", "boxwood.diff", "boxwood.scale"),
     ("boxwood.bundle", "boxwood.demo"),
     ("boxwood.cli", "boxwood.__main__"),

@@ -21,8 +21,10 @@ instead: the model as C99 source, an example that checks the reference rows, the
 board files and a Makefile (see "the C target" below); its manifest has ``"target": "c"``.
 
 The manifest guards against damage and mix-ups (a copy cut short, a file from another
-bundle, a scorer of another version); it is not a signature against a deliberate
-attacker who can rewrite both a file and the manifest.
+bundle, a scorer of another version); alone it is not a signature against a deliberate
+attacker who can rewrite both a file and the manifest. ``sign`` (``boxwood bundle --sign
+KEY``) adds ``manifest.sig``, an Ed25519 signature of the manifest's bytes that a box
+trusting the public key checks (boxwood.signing, docs/bundle-signing.md).
 """
 from __future__ import annotations
 
@@ -37,7 +39,7 @@ import zipfile
 from pathlib import Path
 from typing import Any, Dict, List, Optional, Union
 
-from . import __version__
+from . import __version__, signing
 
 BUNDLE_FORMAT = "boxwood.bundle"
 BUNDLE_FORMAT_VERSION = 1
@@ -45,7 +47,7 @@ ARTEFACT = "model.json"
 MANIFEST = "manifest.json"
 README = "README.txt"
 ENTRY = "box.py"
-RUNTIME_FILES = ("scorer.py", "stream.py", ENTRY)  # copied as they are from boxwood_runtime
+RUNTIME_FILES = ("scorer.py", "stream.py", "signature.py", ENTRY)  # copied as they are from boxwood_runtime
 FOOTPRINT_CHOICES = ("auto", "require", "skip")
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)
 
@@ -190,8 +192,13 @@ Cautions
   standards and local codes that apply to the installation; this model is not one.
 - Test a retrained model on the target hardware before it is put in service, and
   keep a safe fallback for when the scorer refuses a record or the bundle.
-- manifest.json detects damaged, truncated, missing or mixed-up files. It is not a
-  signature: protect the folder from deliberate tampering by other means.
+- manifest.json detects damaged, truncated, missing, extra or mixed-up files. Alone
+  it is not a signature. If this bundle holds manifest.sig, install the maker's
+  public key outside this folder (/etc/boxwood/trusted.pub, or pass
+  --trust FILE): check then requires a valid Ed25519 signature of manifest.json.
+  Against someone who can write this folder, run a box.py installed elsewhere:
+  python3 /opt/boxwood/box.py --bundle THIS_FOLDER check --trust FILE.
+- Keep only the listed files in this folder (an extra file fails check).
 """.format(task=model.task, n_features=model.n_features, outputs=outputs, trees=model.n_trees,
            nodes=model.n_nodes, depth=model.max_depth, size=foot["artefact_bytes"],
            inputs=", ".join(getattr(model, "input_names", model.feature_names)), memory=memory)
@@ -228,14 +235,15 @@ def write_manifest(folder: Union[str, Path], foot: Optional[Dict[str, Any]] = No
 
 def make_bundle(source: Union[str, Path], out_dir: Union[str, Path], zip_file: bool = False,
                 measure: str = "auto", port: Optional[Union[str, Path]] = None,
-                reference_rows: int = 6) -> Dict[str, Any]:
+                reference_rows: int = 6, sign: Optional[Union[str, Path]] = None) -> Dict[str, Any]:
     """Make the bundle folder ``out_dir`` (which must not exist, or be empty) from
-    ``source`` (artefact or model file); with ``zip_file`` also ``<out_dir>.zip``.
-    Returns the manifest. The folder appears complete or not at all (built beside it,
-    then renamed)."""
+    ``source`` (artefact or model file); with ``zip_file`` also ``<out_dir>.zip``; with
+    ``sign`` (an Ed25519 private key file, boxwood.signing) also manifest.sig. Returns the
+    manifest. The folder appears complete or not at all (built beside it, then renamed)."""
     import boxwood_runtime
 
     out = _free_folder(out_dir)
+    key = _signing_key(sign)
     data = artefact_from(source, reference_rows=reference_rows)
     foot = footprint(data, measure=measure, port=port)
     model = boxwood_runtime.load(data)
@@ -246,6 +254,8 @@ def make_bundle(source: Union[str, Path], out_dir: Union[str, Path], zip_file: b
             shutil.copyfile(runtime_dir() / name, work / name)
         (work / README).write_text(readme_text(model, foot), encoding="utf-8")
         manifest = write_manifest(work, foot)
+        if key is not None:
+            signing.sign_folder(work, key)
         _publish(work, out)
     except BaseException:
         shutil.rmtree(work, ignore_errors=True)
@@ -253,6 +263,11 @@ def make_bundle(source: Union[str, Path], out_dir: Union[str, Path], zip_file: b
     if zip_file:
         write_zip(out)
     return manifest
+
+
+def _signing_key(sign: Optional[Union[str, Path]]) -> Any:
+    """The private key to sign with (read before any work, so a bad key fails fast), or None."""
+    return None if sign is None else signing.load_private_key(sign)
 
 
 def _free_folder(out_dir: Union[str, Path]) -> Path:
@@ -503,7 +518,8 @@ def write_c_manifest(folder: Path, prefix: str, doc: Dict[str, Any], foot: Dict[
 
 
 def make_c_bundle(source: Union[str, Path], out_dir: Union[str, Path], prefix: str = C_PREFIX,
-                  zip_file: bool = False, reference_rows: int = 6) -> Dict[str, Any]:
+                  zip_file: bool = False, reference_rows: int = 6,
+                  sign: Optional[Union[str, Path]] = None) -> Dict[str, Any]:
     """Make the C bundle folder ``out_dir`` (new or empty) from ``source`` (artefact or model
     file); with ``zip_file`` also ``<out_dir>.zip``. Returns the manifest. Raises FormatError
     (a ValueError) when C cannot carry the model, BundleError for a bad prefix or folder, and
@@ -519,6 +535,7 @@ def make_c_bundle(source: Union[str, Path], out_dir: Union[str, Path], prefix: s
     from .formats.json.reader import from_document
 
     out = _free_folder(out_dir)
+    key = _signing_key(sign)
     try:
         prefix = prefix_from(prefix, prefix)
     except CTargetError as exc:
@@ -543,6 +560,8 @@ def make_c_bundle(source: Union[str, Path], out_dir: Union[str, Path], prefix: s
         (work / README).write_text(c_readme_text(ensemble, prefix, foot, model.doc["boxwood_digest"],
                                                  len(ref.raw[0]), len(ref.transformed[0])), encoding="utf-8")
         manifest = write_c_manifest(work, prefix, model.doc, foot, ensemble, c_check.digest(c_path))
+        if key is not None:
+            signing.sign_folder(work, key)
         _publish(work, out)
     except BaseException:
         shutil.rmtree(work, ignore_errors=True)

@@ -58,7 +58,6 @@ scored, error rows, and the message of the first error row (or None).
 """
 import json
 from collections import namedtuple
-from itertools import chain
 
 try:
     import csv
@@ -82,6 +81,7 @@ LABEL_COLUMN = "label"
 PROBA_PREFIX = "proba_"
 RAW_PREFIX = "raw_"
 PROGRESS_EVERY = 10000
+INCOMPLETE = "incomplete:"  # the error text of the last line of an output whose run stopped early
 
 Counts = namedtuple("Counts", ["rows", "scored", "errors", "first_error"])
 
@@ -119,7 +119,11 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     if csv is None and out_fmt == "csv":
         raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
                           "use JSON Lines")
-    fmt, id_name, rows, first = read_records(model, infile, fmt, id_column, delimiter)
+    try:
+        fmt, id_name, rows, first = read_records(model, infile, fmt, id_column, delimiter)
+    except UnicodeError as exc:  # a text-mode input that is not UTF-8, before any row
+        raise StreamError("the input is not UTF-8 text (%s); nothing was written (open the input in binary mode "
+                          "to get error rows instead)" % (exc,))
     values = output_columns(model, raw_scores)
     if id_name is not None and (id_name in values or id_name == ERROR_COLUMN):
         raise StreamError("the id column %r has the name of an output column (%s)"
@@ -130,22 +134,31 @@ def score_stream(model, infile, outfile, fmt="auto", id_column=None, out_fmt=Non
     writer = _Writer(out_fmt, outfile, DEFAULT_ID if per_row else id_name, values, per_row, delimiter)
     n_rows = n_scored = n_errors = 0
     first_error = None
-    for n, where, ident, has_id, record, error in rows:
-        result = None
-        if error is None:
-            result, error = _score(model, record, n, where, raw_scores)
-        if n_rows == 0:
-            writer.start()
-        n_rows += 1
-        if error is None:
-            n_scored += 1
-        else:
-            n_errors += 1
-            if first_error is None:
-                first_error = error
-        writer.row(ident, has_id, result, error)
-        if progress is not None and n_rows % progress_every == 0:
-            progress(n_rows)
+    try:
+        for n, where, ident, has_id, record, error in rows:
+            result = None
+            if error is None:
+                result, error = _score(model, record, n, where, raw_scores)
+            if n_rows == 0:
+                writer.start()
+            n_rows += 1
+            error = writer.row(ident, has_id, result, error, where)
+            if error is None:
+                n_scored += 1
+            else:
+                n_errors += 1
+                if first_error is None:
+                    first_error = error
+            if progress is not None and n_rows % progress_every == 0:
+                progress(n_rows)
+    except BaseException as exc:  # the run stops here: say so in the output's last line
+        reason = "%s: %s" % (type(exc).__name__, exc) if str(exc) else type(exc).__name__
+        writer.stopped(n_rows, reason)
+        if isinstance(exc, UnicodeError):  # a text-mode input that is not UTF-8
+            raise StreamError("the input is not UTF-8 text after row %d (%s); the output ends with a line saying "
+                              "the run is incomplete (open the input in binary mode to get error rows instead)"
+                              % (n_rows, exc))
+        raise
     if n_rows == 0 and first is not None and fmt == "csv":
         writer.start()  # a header and no data rows: still write the output header
     if hasattr(outfile, "flush"):
@@ -162,34 +175,160 @@ def read_records(model, infile, fmt="auto", id_column=None, delimiter=","):
     dict ready for :meth:`Model.prepare`, or None when ``error`` says why the row could
     not be read), and the first non-blank input line (None for empty input). Raises
     :class:`StreamError` when the stream as a whole is unusable. ``delimiter`` is the
-    CSV cell separator (one character).
+    CSV cell separator (one character). ``infile`` yields text lines or bytes lines
+    (bytes are decoded here as UTF-8, line by line: a line that is not UTF-8 is an error row).
     """
-    if not (isinstance(delimiter, str) and len(delimiter) == 1 and delimiter not in "\r\n\"{"):
-        raise StreamError("the delimiter must be one character other than a quote, a brace or a line break, "
-                          "got %r" % (delimiter,))
+    if not (isinstance(delimiter, str) and len(delimiter) == 1 and delimiter not in "\r\n\"{["):
+        raise StreamError("the delimiter must be one character other than a quote, a bracket, a brace or a line "
+                          "break, got %r" % (delimiter,))
     if fmt not in FORMATS:
         raise StreamError("unknown input format %r; expected one of %s" % (fmt, ", ".join(FORMATS)))
-    lines = iter(infile)
+    lines = _Lines(infile)
     head = []  # lines read while looking for the first non-blank one
     first = None
-    for line in lines:
-        if not head and line.startswith("\ufeff"):
-            line = line[1:]  # a byte-order mark is not part of the data
-        head.append(line)
-        if line.strip():
-            first = line
+    for item in lines:  # the first non-blank line that is text (an undecodable one is a row of its own)
+        head.append(item)
+        if item[1] is not None and item[1].strip():
+            first = item[1]
             break
+    lines.push(head)
     if fmt == "auto":
-        fmt = "jsonl" if first is not None and first.lstrip().startswith("{") else "csv"
+        fmt = "jsonl" if first is not None and first.lstrip()[:1] in ("{", "[") else "csv"
     if csv is None and fmt == "csv":
         raise StreamError("CSV needs Python's csv module, which this Python (MicroPython?) lacks; "
                           "use JSON Lines")
-    source = chain(head, lines)
     if fmt == "csv":
-        id_name, rows = _csv_rows(model, source, id_column, delimiter)
+        id_name, rows = _csv_rows(model, lines, id_column, delimiter)
     else:
-        id_name, rows = _jsonl_rows(model, source, id_column, first)
+        id_name, rows = _jsonl_rows(model, lines, id_column, first)
     return fmt, id_name, rows, first
+
+
+# ----------------------------------------------------------------------------- lines
+MAX_LINE = 1 << 24  # a physical line longer than 16 MiB is an error row (not read whole)
+MAX_RECORD_LINES = 100  # a quoted CSV cell may span at most this many lines ...
+MAX_RECORD_CHARS = 1 << 20  # ... and this many characters; else its quote is a stray one
+MAX_JSON_DEPTH = 64  # a JSON record nested deeper is an error row (checked before parsing)
+
+
+def _split_cr(raw):
+    """A physical line split at lone carriage returns too (as text files opened with newline=""
+    split them), ends kept."""
+    cr = "\r" if isinstance(raw, str) else b"\r"
+    if cr not in raw:
+        return [raw]
+    out = []
+    i = 0
+    n = len(raw)
+    while i < n:
+        j = raw.find(cr, i)
+        if j < 0:
+            out.append(raw[i:])
+            break
+        end = j + 2 if raw[j + 1:j + 2] in ("\n", b"\n") else j + 1
+        out.append(raw[i:end])
+        i = end
+    return out
+
+
+def _raw_lines(infile):
+    """Physical lines of ``infile`` (text or bytes), each at most MAX_LINE long; an over-long
+    line is skipped to its end and given as None."""
+    readline = getattr(infile, "readline", None)
+    if readline is not None:
+        try:
+            raw = readline(MAX_LINE + 1)
+        except TypeError:  # a readline without a size: iterate instead
+            readline = None
+    if readline is None:
+        for raw in infile:
+            for part in _split_cr(raw):
+                yield part
+        return
+    while raw:
+        if len(raw) > MAX_LINE and raw[-1:] not in ("\n", b"\n"):
+            while True:  # skip the rest of this line without holding it
+                more = readline(MAX_LINE + 1)
+                if not more or more[-1:] in ("\n", b"\n"):
+                    break
+            yield None
+        else:
+            for part in _split_cr(raw):
+                yield part
+        raw = readline(MAX_LINE + 1)
+
+
+class _Lines:
+    """The input as ``(line number, text or None, raw bytes or None, problem or None)`` per
+    physical line, decoded line by line; lines can be pushed back to be read again."""
+
+    def __init__(self, infile):
+        self._source = self._decoded(infile)
+        self._back = []
+
+    @staticmethod
+    def _decoded(infile):
+        no = 0
+        for raw in _raw_lines(infile):
+            no += 1
+            if raw is None:
+                yield no, None, b"", "the line is longer than %d bytes" % MAX_LINE
+                continue
+            if isinstance(raw, str):
+                text = raw
+            else:
+                try:
+                    text = bytes(raw).decode("utf-8")
+                except UnicodeError as exc:
+                    yield no, None, bytes(raw), "not UTF-8 text (%s)" % (_decode_problem(raw, exc),)
+                    continue
+            if no == 1 and text.startswith("\ufeff"):
+                text = text[1:]  # a byte-order mark is not part of the data
+            yield no, text, None, None
+
+    def __iter__(self):
+        return self
+
+    def __next__(self):
+        if self._back:
+            return self._back.pop()
+        return next(self._source)
+
+    def push(self, items):
+        """Read ``items`` (in their order) before the rest of the input."""
+        self._back.extend(reversed(list(items)))
+
+
+def _decode_problem(raw, exc):
+    start = getattr(exc, "start", None)
+    if isinstance(start, int) and 0 <= start < len(raw):
+        return "byte 0x%02x at byte %d of the line" % (bytearray(raw[start:start + 1])[0], start + 1)
+    return str(exc)
+
+
+def _json_depth_over(text, limit):
+    """True when JSON ``text`` nests [ and { deeper than ``limit`` (outside strings)."""
+    if text.count("[") + text.count("{") <= limit:
+        return False  # cannot be deeper: no scan needed
+    depth = 0
+    in_string = escaped = False
+    for c in text:
+        if in_string:
+            if escaped:
+                escaped = False
+            elif c == "\\":
+                escaped = True
+            elif c == '"':
+                in_string = False
+        elif c == '"':
+            in_string = True
+        elif c in "[{":
+            depth += 1
+            if depth > limit:
+                return True
+        elif c in "]}":
+            depth -= 1
+    return False
 
 
 # ----------------------------------------------------------------------------- scoring
@@ -226,17 +365,123 @@ def _where(n, line):
     return "row %d (line %d)" % (n, line)
 
 
-def _csv_rows(model, source, id_column, delimiter=","):
+def _quote_state(text, delimiter, quoted):
+    """Where a line leaves csv's reader (default dialect: doublequote, no escape character, not
+    strict): (inside a quoted cell at the end of the line, index of the cell where the last quoted
+    cell opened). ``quoted``: the line starts inside a quoted cell (the previous one ended so)."""
+    state = 2 if quoted else 0  # 0 start of a cell, 1 in an unquoted cell, 2 in quotes, 3 quote in quotes
+    cell = opened = 0
+    for c in text:
+        if state == 2:
+            if c == '"':
+                state = 3
+        elif c == delimiter and state != 2:
+            state = 0
+            cell += 1
+        elif c in "\r\n":
+            state = 0
+        elif state == 0:
+            if c == '"':
+                state = 2
+                opened = cell
+            else:
+                state = 1
+        elif state == 3:
+            state = 2 if c == '"' else 1
+    return state == 2, opened
+
+
+def _parse_csv(texts, delimiter):
+    """(cells, None) for the lines of one record, or (None, reason)."""
+    try:
+        rows = list(csv.reader(texts, delimiter=delimiter))
+    except csv.Error as exc:  # e.g. a cell over csv.field_size_limit()
+        return None, "unreadable CSV: %s" % (exc,)
+    if len(rows) != 1:
+        return None, "unreadable CSV: the line gives %d records" % len(rows)
+    return rows[0], None
+
+
+def _csv_records(lines, delimiter, width=None):
+    """Yield ``(first line, cells, problem, cell index)`` per CSV record of ``lines`` (blank lines
+    are not records). A record is what csv's reader reads from a well-formed file: one line, or
+    several when a quoted cell holds line breaks. A quote that opens a cell and is not closed
+    within MAX_RECORD_LINES lines / MAX_RECORD_CHARS characters or by the end of the input, or
+    whose record (when ``width`` is given) has another number of cells than the header, is read as
+    a stray quote: its line alone is an error record and reading goes on at the next line (so one
+    stray quote costs one row, not every row after it). A line that is not UTF-8 is an error record."""
+    for item in lines:
+        no, text, raw, problem = item
+        if problem is not None:
+            yield no, None, problem, _bad_byte_cell(raw, delimiter) if raw else None
+            continue
+        if text in ("\n", "\r\n", "\r", ""):
+            continue  # a blank line is not a record (as csv's reader and pandas skip it)
+        if '"' not in text:  # the common case: no quote, one line
+            cells, reason = _parse_csv([text], delimiter)
+            yield no, cells, reason, None
+            continue
+        inside, opened = _quote_state(text, delimiter, False)
+        pending = [item]
+        reason = None
+        size = len(text)
+        while inside:
+            try:
+                nxt = next(lines)
+            except StopIteration:
+                reason = "is not closed by the end of the input"
+                break
+            pending.append(nxt)
+            if nxt[3] is not None:
+                reason = "is cut by line %d, which is %s" % (nxt[0], nxt[3])
+                break
+            size += len(nxt[1])
+            inside = _quote_state(nxt[1], delimiter, True)[0]
+            if inside and (len(pending) >= MAX_RECORD_LINES or size > MAX_RECORD_CHARS):
+                reason = "is not closed within %d lines and %d characters" % (MAX_RECORD_LINES, MAX_RECORD_CHARS)
+                break
+        if reason is None:
+            cells, problem = _parse_csv([p[1] for p in pending], delimiter)
+            if problem is not None:
+                if len(pending) == 1:
+                    yield no, None, problem, None
+                    continue
+                reason = "gives %s" % problem
+            elif len(pending) == 1 or width is None or len(cells) == width:
+                yield no, cells, None, None
+                continue
+            else:
+                reason = "joins lines %d-%d into one record of %d cells, the header has %d" % (
+                    no, pending[-1][0], len(cells), width)
+        lines.push(pending[1:])  # read again, each on its own
+        yield no, None, ("a quote opens a quoted cell here that %s; read as a stray quote: this line is an "
+                         "error row and reading goes on at line %d" % (reason, no + 1)), opened
+
+
+def _bad_byte_cell(raw, delimiter):
+    """The index of the cell holding the first byte that is not UTF-8 (counting delimiters before it)."""
+    try:
+        raw.decode("utf-8")
+        return None
+    except UnicodeError as exc:
+        start = getattr(exc, "start", None)
+    if not isinstance(start, int):
+        return None
+    return raw[:start].count(delimiter.encode("utf-8"))
+
+
+def _csv_rows(model, lines, id_column, delimiter=","):
     """Read the header now; return (id column name or None, generator of row results)."""
-    reader = csv.reader(source, delimiter=delimiter)
+    records = _csv_records(lines, delimiter)
     header = None
-    for cells in reader:
-        if cells:
-            header = [c.strip() for c in cells]
-            break
+    for no, cells, problem, _ in records:
+        where_header = "the CSV header (line %d)" % no
+        if problem is not None:
+            raise StreamError("%s cannot be read: %s" % (where_header, problem))
+        header = [c.strip() for c in cells]
+        break
     if header is None:
         return (id_column, iter(()))
-    where_header = "the CSV header (line %d)" % reader.line_num
     if id_column is not None and id_column not in header:
         raise StreamError("the id column %r is not in %s; its columns are: %s"
                           % (id_column, where_header, ", ".join(header)))
@@ -256,23 +501,13 @@ def _csv_rows(model, source, id_column, delimiter=","):
 
     def rows():
         n = 0
-        done = reader.line_num
-        while True:
-            try:
-                cells = next(reader)
-            except StopIteration:
-                return
-            except csv.Error as exc:
-                n += 1
-                where = _where(n, done + 1)
-                done = reader.line_num
-                yield n, where, None, False, None, _message(where, None, "unreadable CSV: %s" % (exc,))
-                continue
-            start, done = done + 1, reader.line_num
-            if not cells:
-                continue  # a blank line is not a row
+        for no, cells, problem, cell in _csv_records(lines, delimiter, width):
             n += 1
-            where = _where(n, start)
+            where = _where(n, no)
+            if problem is not None:
+                field = header[cell] if cell is not None and 0 <= cell < width else None
+                yield n, where, None, False, None, _message(where, field, problem)
+                continue
             ident = cells[id_index] if id_index is not None and id_index < len(cells) else None
             if len(cells) != width:
                 yield n, where, ident, ident is not None, None, _message(
@@ -288,10 +523,10 @@ def _csv_rows(model, source, id_column, delimiter=","):
     return id_name, rows()
 
 
-def _jsonl_rows(model, source, id_column, first):
+def _jsonl_rows(model, lines, id_column, first):
     """Return (id field name or None, generator of row results) for JSON Lines."""
     id_name = id_column
-    if id_name is None and first is not None:
+    if id_name is None and first is not None and not _json_depth_over(first, MAX_JSON_DEPTH):
         try:
             peek = json.loads(first)
         except (ValueError, RecursionError):
@@ -302,11 +537,18 @@ def _jsonl_rows(model, source, id_column, first):
 
     def rows():
         n = 0
-        for line_no, line in enumerate(source, 1):
-            if not line.strip():
+        for line_no, line, _, problem in lines:
+            if problem is None and not line.strip():
                 continue
             n += 1
             where = _where(n, line_no)
+            if problem is not None:
+                yield n, where, None, False, None, _message(where, None, problem)
+                continue
+            if _json_depth_over(line, MAX_JSON_DEPTH):
+                yield n, where, None, False, None, _message(
+                    where, None, "nested deeper than %d levels (not read)" % MAX_JSON_DEPTH)
+                continue
             try:
                 obj = _loads(line, model.json_float)
             except (ValueError, RecursionError) as exc:
@@ -369,16 +611,23 @@ class _Writer:
             head = ([self.id_name] if self.id_name is not None else []) + self.values + [ERROR_COLUMN]
             self.csv.writerow(head)
 
-    def row(self, ident, has_id, result, error):
+    def row(self, ident, has_id, result, error, where=""):
+        """Write one output row; return its error (a row whose id cannot be written becomes an
+        error row, written with an empty id)."""
         if self.csv is not None:
-            cells = [_text(ident)] if self.id_name is not None else []
+            try:
+                id_cell = [_cell_text(_text(ident))] if self.id_name is not None else []
+            except (ValueError, TypeError, RecursionError) as exc:
+                id_cell = [""]
+                result, error = None, _message(where, self.id_name, "the id cannot be written back: %s" % (exc,))
+            cells = id_cell
             if result is None:
                 cells.extend([""] * len(self.values))
             else:
                 cells.extend(_text(v) for v in result)
-            cells.append(error or "")
+            cells.append(_cell_text(error or ""))
             self.csv.writerow(cells)
-            return
+            return error
         obj = {}
         if self.id_name is not None and (has_id or not self.per_row):
             obj[self.id_name] = ident
@@ -392,16 +641,63 @@ class _Writer:
         try:
             text = _dumps(obj)
         except ValueError:  # an id holding NaN or infinity (Python's json reads those)
-            obj[self.id_name] = json.dumps(ident)
+            try:
+                obj[self.id_name] = json.dumps(ident)
+                text = _dumps(obj)
+            except (ValueError, TypeError, RecursionError) as exc:
+                text = None
+                reason = exc
+        except (TypeError, RecursionError) as exc:
+            text = None
+            reason = exc
+        if text is None:
+            error = _message(where, self.id_name, "the id cannot be written back: %s" % (reason,))
+            obj = dict((name, None) for name in self.values)
+            if self.id_name is not None and (has_id or not self.per_row):
+                obj[self.id_name] = None
+            obj[ERROR_COLUMN] = error
             text = _dumps(obj)
         self.out.write(text + "\n")
+        return error
+
+    def stopped(self, rows, reason):
+        """The last line of an output whose run stopped early: it says so (best effort)."""
+        message = "%s the run stopped after %d rows (%s); the rows after those were not scored" % (
+            INCOMPLETE, rows, reason)
+        try:
+            self.start()
+            if self.csv is not None:
+                self.csv.writerow(([""] if self.id_name is not None else []) + [""] * len(self.values)
+                                  + [_cell_text(message)])
+            else:
+                obj = dict((name, None) for name in self.values)
+                obj[ERROR_COLUMN] = message
+                self.out.write(_dumps(obj) + "\n")
+            if hasattr(self.out, "flush"):
+                self.out.flush()
+        except Exception:  # the output itself may be what failed
+            pass
+
+
+def _cell_text(text):
+    """CSV cell text that UTF-8 can encode (a lone surrogate from a JSON id is escaped)."""
+    try:
+        text.encode("utf-8")
+        return text
+    except UnicodeError:
+        return text.encode("utf-8", "backslashreplace").decode("utf-8")
 
 
 def _dumps(obj):
     try:
-        return json.dumps(obj, ensure_ascii=False, allow_nan=False)
+        text = json.dumps(obj, ensure_ascii=False, allow_nan=False)
     except TypeError:  # MicroPython's json.dumps takes no options
         return json.dumps(obj)
+    try:
+        text.encode("utf-8")
+    except UnicodeError:  # a lone surrogate (from a JSON \ud800 escape): keep it escaped
+        text = json.dumps(obj, allow_nan=False)
+    return text
 
 
 def _text(value):

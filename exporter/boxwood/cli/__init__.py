@@ -5,7 +5,8 @@
     boxwood export model.onnx -o model.json       # ONNX tree-ensemble file -> artefact
     boxwood score model.json readings.csv -o scored.csv
     boxwood inspect model.json [--json] [--micropython]
-    boxwood bundle MODEL.joblib|model.json -o DIR [--zip]   # one folder to copy onto a box
+    boxwood bundle MODEL.joblib|model.json -o DIR [--zip] [--sign NAME.key]   # one folder to copy onto a box
+    boxwood keygen -o NAME                       # NAME.key / NAME.pub to sign bundles
     boxwood verify MODEL.joblib model.json [--data FILE] [--report-json F] [--junit F]
     boxwood diff OLD NEW [--data FILE] [--json F] [--report-html F]
     boxwood demo [--out DIR] [--rows N]
@@ -32,12 +33,12 @@ import os
 import sys
 
 from .. import __version__
-from . import bundle, demo, diff, export, inspect, score, verify
+from . import bundle, demo, diff, export, inspect, keygen, score, verify
 from .common import PROG, CheckFailed, UsageError, error
 
 __all__ = ["main", "build_parser", "COMMANDS", "CheckFailed", "UsageError"]
 
-COMMANDS = (export, score, inspect, bundle, verify, diff, demo)
+COMMANDS = (export, score, inspect, bundle, keygen, verify, diff, demo)
 
 
 def build_parser():

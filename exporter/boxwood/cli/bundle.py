@@ -1,6 +1,9 @@
 """``boxwood bundle``: one folder to copy onto a box (boxwood.bundle.make_bundle), or with
 ``--target c`` a folder for a microcontroller project (boxwood.bundle.make_c_bundle)."""
+from pathlib import Path
+
 from ..sources import PICKLE_WARNING
+from ..sources.loading import refuse_data_name
 from .common import CheckFailed, UsageError, existing_file, footprint_text, kind_text, load_artefact, positive_int
 
 
@@ -32,6 +35,9 @@ def add(commands):
                         "when node and the MicroPython WebAssembly port are found (default), require = fail if "
                         "not, skip")
     p.add_argument("--micropython-port", metavar="DIR", help="folder of the port's micropython.mjs")
+    p.add_argument("--sign", metavar="KEYFILE",
+                   help="sign the manifest with this Ed25519 private key (NAME.key from 'boxwood keygen'): "
+                        "writes manifest.sig; a box that trusts NAME.pub checks it (box.py check --trust NAME.pub)")
     p.add_argument("--reference-rows", type=positive_int, default=6, metavar="N",
                    help="self-check rows when SOURCE is a model file (default: %(default)s)")
     p.set_defaults(func=run)
@@ -46,6 +52,8 @@ def run(args):
     if args.target == "python" and args.c_prefix is not None:
         raise UsageError("--c-prefix applies to --target c only")
     kind = existing_file(args.source, "source")
+    if kind == "pickle":
+        refuse_data_name(args.source)  # the name and the content must agree: never unpickle model.json
     if kind in ("json-artefact", "json"):
         load_artefact(args.source)  # a damaged artefact or a failed self-check: exit 1; not an artefact: 2
     elif kind in ("csv", "jsonl", "text", "zip"):
@@ -56,17 +64,21 @@ def run(args):
     try:
         if args.target == "c":
             manifest = make_c_bundle(args.source, args.output, prefix=args.c_prefix or C_PREFIX, zip_file=args.zip,
-                                     reference_rows=args.reference_rows)
+                                     reference_rows=args.reference_rows, sign=args.sign)
         else:
             manifest = make_bundle(args.source, args.output, zip_file=args.zip,
                                    measure=args.micropython_footprint or "auto", port=args.micropython_port,
-                                   reference_rows=args.reference_rows)
+                                   reference_rows=args.reference_rows, sign=args.sign)
     except BundleCheckFailed as exc:
         raise CheckFailed(str(exc))
     foot = manifest["footprint"]
     print("bundled %s into %s%s" % (args.source, args.output, " (and %s.zip)" % args.output if args.zip else ""))
     for name, entry in sorted(manifest["files"].items()):
         print("  %-12s %8d bytes  sha256 %s" % (name, entry["bytes"], entry["sha256"]))
+    if args.sign:
+        sig = (Path(args.output) / "manifest.sig").read_text(encoding="ascii").split()
+        print("  %-12s signed by key %s (%s); the box checks it with the public key" % ("manifest.sig", sig[3],
+                                                                                      args.sign))
     print("  %-12s %s trees, %s nodes, deepest path %s splits" % ("model", foot["trees"], foot["nodes"],
                                                                    foot["max_depth"]))
     if args.target == "c":
@@ -75,7 +87,8 @@ def run(args):
               "main.c prints PASS or FAIL")
         return 0
     print("  %-12s %s" % ("footprint", footprint_text(foot)))
-    print("on the box:  python3 box.py check   (or: micropython box.py check)")
+    print("on the box:  python3 box.py check   (or: micropython box.py check)%s"
+          % ("; signed: python3 box.py check --trust KEY.pub" if args.sign else ""))
     return 0
 
 

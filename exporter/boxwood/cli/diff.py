@@ -63,8 +63,7 @@ def run(args):
             pyplot()
         except ImportError as exc:
             raise UsageError(str(exc))
-    if "pickle" in (file_kind(args.old), file_kind(args.new)):
-        print("%s: warning: %s" % (PROG, PICKLE_WARNING), file=sys.stderr)
+    # a pickle's warning is written by sources.load_model_file, once per file it loads
     try:
         result = diff(args.old, args.new, data=args.data, probes=args.probes, seed=args.seed, most=args.top)
     except DamagedArtefact as exc:

@@ -2,6 +2,7 @@
 in any registered format, checked after writing (boxwood.export.export)."""
 from .. import formats
 from ..sources import PICKLE_WARNING, SUPPORTED, UnsupportedModel
+from ..sources.loading import refuse_data_name
 from .common import CheckFailed, UsageError, existing_file, kind_text, output_path, positive_int, write_error
 
 MODEL_TAKES = ("a fitted model saved with joblib or pickle, an ONNX tree-ensemble file (.onnx) or a boxwood "
@@ -11,6 +12,8 @@ MODEL_TAKES = ("a fitted model saved with joblib or pickle, an ONNX tree-ensembl
 def check_model_file(path):
     """UsageError for a missing file, a folder or a data file given where a model is expected."""
     kind = existing_file(path, "model")
+    if kind == "pickle":
+        refuse_data_name(path)  # a pickle named model.json or model.onnx: refused, never unpickled
     if formats.registry.by_extension(path) is not None:
         return kind  # named as an artefact format (.onnx, .json): that format's reader says what is wrong
     if kind in ("csv", "jsonl", "text", "zip", "json"):

@@ -1,9 +1,10 @@
 """``boxwood score``: stream a CSV or JSON Lines file through an artefact with the device scorer."""
+import contextlib
 import os
 import sys
 import time
 
-from .common import (PROG, UsageError, existing_file, load_artefact, positive_int, refuse_kind, text_input,
+from .common import (PROG, UsageError, existing_file, load_artefact, positive_int, refuse_kind,
                      text_output)
 
 
@@ -82,11 +83,11 @@ def run_dask(args):
         scale.expand(args.input)
     except ValueError as exc:
         raise UsageError(str(exc))
-    progress = None
-    if sys.stderr.isatty():
-        def progress(done, total):
-            sys.stderr.write("\r%s: %d/%d partitions" % (PROG, done, total))
-            sys.stderr.flush()
+    def show_partitions(done, total):
+        sys.stderr.write("\r%s: %d/%d partitions" % (PROG, done, total))
+        sys.stderr.flush()
+
+    progress = show_partitions if sys.stderr.isatty() else None
     start = time.perf_counter()
     client = connect(args.dask, args.workers)
     try:
@@ -110,6 +111,17 @@ def run_dask(args):
     return 2 if summary.errors else 0
 
 
+@contextlib.contextmanager
+def binary_input(name):
+    """``name`` (or stdin for "-") as bytes: the stream decodes each line itself, so a line that is
+    not UTF-8 is an error row for that line, not the end of the run."""
+    if name == "-":
+        yield getattr(sys.stdin, "buffer", None) or sys.stdin
+        return
+    with open(name, "rb") as fh:
+        yield fh
+
+
 def run(args):
     from boxwood_runtime.stream import score_stream
 
@@ -120,19 +132,19 @@ def run(args):
     model = load_artefact(args.artefact, unknown_category=args.unknown_category)
     if args.input != "-":
         kind = existing_file(args.input, "input")  # a missing file or a folder: bad input
-        if kind not in ("csv", "jsonl", "json", "text"):  # a model, an artefact, a zip, ... is no data
+        if kind not in ("csv", "jsonl", "json", "text", "unknown"):  # a model, an artefact, a zip, ... is no data
             refuse_kind(args.input, kind, "CSV with a header row or JSON Lines records to score")
     if ("-" not in (args.input, args.output) and os.path.exists(args.output)
             and os.path.samefile(args.input, args.output)):
         raise UsageError("the output %r is the input file; write to another file" % args.output)
-    progress = None
-    if sys.stderr.isatty():
-        def progress(rows):
-            sys.stderr.write("\r%s: %d rows" % (PROG, rows))
-            sys.stderr.flush()
+    def show_rows(rows):
+        sys.stderr.write("\r%s: %d rows" % (PROG, rows))
+        sys.stderr.flush()
+
+    progress = show_rows if sys.stderr.isatty() else None
     start = time.perf_counter()
     try:
-        with text_input(args.input) as src, text_output(args.output) as dst:
+        with binary_input(args.input) as src, text_output(args.output) as dst:
             counts = score_stream(model, src, dst, fmt=args.format, id_column=args.id_column,
                                   delimiter=args.delimiter, raw_scores=args.raw_scores, progress=progress)
     except UnicodeDecodeError as exc:
