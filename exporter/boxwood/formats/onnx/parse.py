@@ -156,6 +156,8 @@ def metadata(model: Any) -> Dict[str, Any]:
         except ArtefactError as exc:
             if "max_nesting" in str(exc):
                 raise OnnxReadError("metadata %s nests deeper than %d levels" % (key, MAX_NESTING))
+            out[key] = value  # brackets that do not pair up: not JSON, kept as text (never parsed)
+            continue
         try:
             out[key] = json.loads(value)
         except ValueError:
