@@ -338,12 +338,24 @@ def check_nesting(data, limit):
     try:
         if _NOT_BRACKETS is None:
             _NOT_BRACKETS = bytes(b for b in range(256) if b not in _BRACKETS)
-        kept = bytes(data).translate(None, _NOT_BRACKETS)
+        step = 1 << 20  # in slices: translate allocates its input's size before it shrinks
+        kept = b"".join(bytes(data[i:i + step]).translate(None, _NOT_BRACKETS) for i in range(0, len(data), step))
     except (AttributeError, TypeError):  # MicroPython: no bytes.translate
         kept = bytes(b for b in data if b in _BRACKETS)
     kept = kept.replace(b'""', b"")  # strings holding no bracket (two quotes in a row)
     if 0x22 in kept:  # strings holding brackets: keep what is outside the quotes
-        kept = b"".join(kept.split(b'"')[0::2])
+        outside = bytearray()
+        i = 0
+        while True:
+            j = kept.find(b'"', i)
+            if j < 0:
+                outside.extend(kept[i:])
+                break
+            outside.extend(kept[i:j])
+            i = kept.find(b'"', j + 1) + 1
+            if i == 0:
+                raise ArtefactError("not valid JSON: a string is not closed")
+        kept = bytes(outside)
     kept = kept.replace(b"{", b"[").replace(b"}", b"]")
     depth = 0
     while kept:
