@@ -204,7 +204,8 @@ class ArtefactTarget:
         try:
             model = sc.load(data)
         except sc.ArtefactError as exc:
-            return ("net", str(exc)[:160]) if sc.UNEXPECTED_CONTENT in str(exc) else "rejected"
+            net = getattr(sc, "UNEXPECTED_CONTENT", None)  # (a scorer from before issue 11 has no net)
+            return ("net", str(exc)[:160]) if net and net in str(exc) else "rejected"
         original = self.originals[k]
         for row in self.rows[k]:
             try:

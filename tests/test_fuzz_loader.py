@@ -355,3 +355,60 @@ def test_property_single_record_parser(name, cells, as_dict):
         model.record_from_text({n: (c if isinstance(c, str) else str(c)) for n, c in zip(model.input_names, cells)})
     except RecordError:
         pass
+
+
+# ----------------------------------------------------------------------------- the same on MicroPython
+_MP_PROGRAM = """
+import sys
+sys.path.insert(0, '/box')
+import scorer
+for name in NAMES:
+    with open('/box/' + name, 'rb') as fh:
+        data = fh.read()
+    try:
+        scorer.load(data)
+        print(name, 'LOADED')
+    except scorer.ArtefactError as exc:
+        print(name, 'net' if scorer.UNEXPECTED_CONTENT in str(exc) else 'refused')
+"""
+
+
+def test_planted_cases_fail_closed_on_micropython():
+    """The planted crashes, run by the same scorer under MicroPython (1.2x WebAssembly port):
+    each ends in ArtefactError from a specific check (MicroPython raises RuntimeError, not
+    RecursionError, when it recurses too deep; its float() of a huge integer gives infinity)."""
+    import os
+
+    from boxwood import micropython as mp
+
+    reason = mp.unavailable_reason()
+    if reason:
+        if os.environ.get("CI"):
+            pytest.fail("MicroPython is required in CI: " + reason)
+        pytest.skip(reason)
+    files = {}
+    body = json.dumps({k: v for k, v in doc_of("iforest").items() if k != scorer.DIGEST_KEY},
+                      sort_keys=True, separators=(",", ":"))
+    body = body.replace('"parameters":{', '"parameters":{"junk":' + "[" * 3000 + "]" * 3000 + ",", 1)
+    files["deep.json"] = (scorer._DIGEST_PREFIX + hashlib.sha256(body.encode()).hexdigest().encode() + b'",'
+                          + body[1:].encode())
+    doc = doc_of("iforest")
+    doc["ensemble"]["base_values"][0] = 10 ** 400
+    files["huge.json"] = resigned(doc)
+    doc = doc_of("ada_binary")
+    doc["outputs"]["post_transform_params"]["weight_total"] = 0
+    files["zero.json"] = resigned(doc)
+    doc = doc_of("gbc_multiclass")
+    doc["outputs"]["classes"] = doc["outputs"]["classes"][1:] + doc["outputs"]["classes"][:1]
+    files["rotated.json"] = resigned(doc)
+    doc = doc_of("gbc_multiclass")
+    doc["self_check"]["rows"][0] = 5
+    files["row.json"] = resigned(doc)
+    files["ok.json"] = zoo.exported("gbc_multiclass")[2]
+    files["scorer.py"] = mp.SCORER.read_bytes()
+    names = sorted(k for k in files if k.endswith(".json"))
+    done = mp.run("NAMES = %r\n" % names + _MP_PROGRAM, {"/box/" + k: v for k, v in files.items()},
+                  heapsize=16 << 20, pystack=16384)
+    assert done.returncode == 0, done.stderr
+    got = dict(line.split() for line in done.stdout.splitlines())
+    assert got == {n: ("LOADED" if n == "ok.json" else "refused") for n in names}
