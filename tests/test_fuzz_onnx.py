@@ -269,3 +269,21 @@ def test_property_mutated_bytes(name, edits):
         return
     problem = agrees_with_onnxruntime(bytes(data), ensemble)
     assert problem is None, problem
+
+
+def test_campaign_finding_operator_transform_then_isolation_arithmetic():
+    """Found by the campaign (seed 11, onnx mutant 3611): an isolation forest's operator given
+    post_transform LOGISTIC, its boxwood.semantics replaced, was read as a logistic model whose
+    labels disagreed with onnxruntime (which applies the logistic and then the graph's Pow chain)."""
+    m = model_of("iforest")
+    attr(tree_node(m), "post_transform").i = 2
+    set_meta(m, "boxwood.semantics", json.dumps({"rows": 0}))
+    refused(m, "post_transform LOGISTIC")
+
+
+def test_campaign_finding_tree_ensemble_without_n_targets():
+    """onnxruntime refuses a TreeEnsemble (opset 5) without n_targets (its target count is then 0);
+    the reader used to assume 1."""
+    m = model_of("rfr")
+    tree_node(m).attribute.remove(attr(tree_node(m), "n_targets"))
+    refused(m, "n_targets")

@@ -67,7 +67,7 @@ _V5_MODES = {0: "BRANCH_LEQ", 1: "BRANCH_LT", 2: "BRANCH_GTE", 3: "BRANCH_GT", 4
 def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
     where = node_label(node)
     need = ("nodes_featureids", "nodes_modes", "nodes_truenodeids", "nodes_falsenodeids", "nodes_trueleafs",
-            "nodes_falseleafs", "leaf_targetids", "leaf_weights", "tree_roots")
+            "nodes_falseleafs", "leaf_targetids", "leaf_weights", "tree_roots", "n_targets")
     missing = [k for k in need if k not in a]
     if missing:
         raise OnnxReadError("%s lacks the attributes %s" % (where, ", ".join(missing)))
@@ -395,7 +395,10 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
             raise OnnxReadError("%s applies %s and the graph applies %s after it; boxwood reads one post-transform"
                                 % (where, tree_post, ", ".join(sorted(found))))
         found.add({"LOGISTIC": "logistic", "SOFTMAX": "softmax"}[tree_post])
-    special = _special_transform(graph, raw, down) if raw is not None and tree_post == "NONE" else None
+    special = _special_transform(graph, raw, down) if raw is not None else None
+    if special is not None and tree_post != "NONE":  # the operator's own transform, then more after it
+        raise OnnxReadError("%s applies post_transform %s and the graph then applies %s's arithmetic; boxwood "
+                            "reads one post-transform" % (where, tree_post, special[0]))
     if special is not None:
         kind, params = special
         if kind == "samme":
