@@ -157,8 +157,7 @@ class ArtefactTarget:
         return [zoo.exported(name)[2] for name in self.CASES]
 
     def setup(self, seeds):
-        from boxwood_runtime import scorer
-
+        scorer = _scorer()
         self.scorer = scorer
         self.seeds_ = seeds
         self.docs = [json.loads(s) for s in seeds]
@@ -340,8 +339,7 @@ class RecordsTarget:
         return ArtefactTarget().seeds()
 
     def setup(self, seeds):
-        from boxwood_runtime import scorer
-
+        scorer = _scorer()
         self.scorer = scorer
         self.models = [scorer.load(s) for s in seeds]
 
@@ -370,6 +368,22 @@ class RecordsTarget:
 
 
 TARGETS = {"artefact": ArtefactTarget, "onnx": OnnxTarget, "records": RecordsTarget}
+
+
+def _scorer():
+    """The device scorer under test: boxwood_runtime's, or the file named by --scorer (e.g. an
+    older scorer.py, to check that the campaign finds what it should)."""
+    path = os.environ.get("BOXWOOD_FUZZ_SCORER")
+    if not path:
+        from boxwood_runtime import scorer
+
+        return scorer
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("scorer_under_test", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
 
 
 # ----------------------------------------------------------------------------- the child process
@@ -505,9 +519,12 @@ def main(argv=None):
     parser.add_argument("--batch", type=int, default=500, help="mutants per child task")
     parser.add_argument("--timeout", type=float, default=10.0, help="seconds per mutant")
     parser.add_argument("--memory-mb", type=int, default=4096, help="address space limit of the child")
+    parser.add_argument("--scorer", metavar="PATH", help="the device scorer file to fuzz (default: boxwood_runtime's)")
     parser.add_argument("--only", metavar="TARGET:I", help="replay one mutant in this process, with its traceback")
     args = parser.parse_args(argv)
     sys.path.insert(0, os.path.join(ROOT, "tests"))
+    if args.scorer:
+        os.environ["BOXWOOD_FUZZ_SCORER"] = os.path.abspath(args.scorer)  # read by the spawned children
     if args.only:
         name, i = args.only.split(":")
         target = TARGETS[name]()
