@@ -141,6 +141,11 @@ def write_artefact(doc, path):
     raws = [m.raw_scores(m.prepare(r, i)) for i, r in enumerate(ref["rows"])]
     ref["raw"] = [[v if math.isfinite(v) else ("inf" if v > 0 else "-inf") for v in m.exact_values(r)] for r in raws]
     ref["transformed"] = [list(m.transform_raw(r)) for r in raws]
+    if "decision" in ref:  # and what the self-check compares since issue 11
+        ref["decision"] = [[v if math.isfinite(v) else ("inf" if v > 0 else "-inf") for v in m.decision_values(r)]
+                           for r in raws]
+    if "labels" in ref:
+        ref["labels"] = [m.predict_from_raw(r) for r in raws]
     data = scorer.artefact_bytes(doc)
     path.write_bytes(data)
     boxwood_runtime.load(data)

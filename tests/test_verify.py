@@ -71,6 +71,10 @@ def write(doc, path, self_check="recompute"):
         raws = [m.raw_scores(m.prepare(r, i)) for i, r in enumerate(ref["rows"])]
         ref["raw"] = [[_num(v) for v in m.exact_values(r)] for r in raws]
         ref["transformed"] = [[_num(v) for v in m.transform_raw(r)] for r in raws]
+        if "decision" in ref:  # and what the self-check compares since issue 11
+            ref["decision"] = [[_num(v) for v in m.decision_values(r)] for r in raws]
+        if "labels" in ref:
+            ref["labels"] = [m.predict_from_raw(r) for r in raws]
     elif self_check == "remove":
         doc.pop("self_check")
     data = scorer.artefact_bytes(doc)

@@ -49,6 +49,7 @@ DEFAULT_LIMITS = {
     "max_nodes_per_tree": 1 << 22,
     "max_nodes": 1 << 26,
     "max_depth": 4096,
+    "max_nesting": 64,  # brackets inside brackets in the file; checked before it is parsed
 }
 _NAN = float("nan")
 _INF = float("inf")
@@ -281,13 +282,19 @@ def artefact_bytes(body):
     return _DIGEST_PREFIX + digest.encode("ascii") + b'",' + content[1:] + b"\n"
 
 
-def _verify_file_bytes(data):
+def _verify_file_bytes(data, max_nesting=None):
     """Check the digest of a file in the canonical layout; return the parsed document.
     ``data`` is the file's bytes, or a one-item list holding them: the list is emptied once
     the bytes are hashed and decoded, so a big file's bytes and its parse are not held at
-    once (the caller must keep no other reference)."""
+    once (the caller must keep no other reference). The nesting of the text is checked
+    first (``max_nesting``, default DEFAULT_LIMITS'), so no parse or re-serialisation recurses
+    deeper than that."""
     holder = data if isinstance(data, list) else [data]
     data = holder[0]
+    if not isinstance(data, (bytes, bytearray)):
+        _need(isinstance(data, str), "the artefact must be bytes or text")
+        data = holder[0] = data.encode("utf-8", "replace")
+    check_nesting(data, DEFAULT_LIMITS["max_nesting"] if max_nesting is None else max_nesting)
     end = len(data)
     while end and data[end - 1] in (10, 13):  # the final newline is not hashed
         end -= 1
@@ -300,7 +307,10 @@ def _verify_file_bytes(data):
             raise ArtefactError("digest mismatch: the file says sha256 %s but its content hashes to %s; "
                                 "the file was changed or damaged after export" % (stated, actual))
         if check_platform():  # json.loads reads text: decode, then let the bytes go
-            data = data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data
+            try:
+                data = data.decode("utf-8") if isinstance(data, (bytes, bytearray)) else data
+            except UnicodeError:
+                raise ArtefactError("the artefact is not valid UTF-8 text")
             holder[0] = None
         doc = _parse_json(data)
         if doc.get(DIGEST_KEY) != "sha256:" + stated:
@@ -310,6 +320,69 @@ def _verify_file_bytes(data):
     doc = _parse_json(data)
     verify_digest(doc)
     return doc
+
+
+# Bytes that can change the nesting of JSON text: the brackets and the string quote.
+_BRACKETS = b'"[]{}'
+_NOT_BRACKETS = None
+
+
+def check_nesting(data, limit):
+    """Refuse JSON text (bytes) whose arrays and objects nest deeper than ``limit``, before
+    any parser sees it (Python's json recurses once per level: a file of 100,000 "[" would
+    end in RecursionError). Brackets inside strings do not count; text whose brackets do not
+    pair up is refused too (it is not JSON). Cheap: strings are cut out with a few
+    bytes.replace / translate passes, then one replace pass per level peels the innermost
+    pairs, so a file of depth d costs about d passes over its brackets."""
+    global _NOT_BRACKETS
+    if 0x5C in data:  # backslash escapes: drop escaped backslashes, then escaped quotes
+        data = bytes(data).replace(b"\\\\", b"").replace(b'\\"', b"")
+    try:
+        if _NOT_BRACKETS is None:
+            _NOT_BRACKETS = bytes(b for b in range(256) if b not in _BRACKETS)
+        step = 1 << 20  # in slices: translate allocates its input's size before it shrinks
+        kept = b"".join(bytes(data[i:i + step]).translate(None, _NOT_BRACKETS) for i in range(0, len(data), step))
+    except (AttributeError, TypeError):  # MicroPython: no bytes.translate
+        kept = bytes(b for b in data if b in _BRACKETS)
+    kept = kept.replace(b'""', b"")  # strings holding no bracket (two quotes in a row)
+    if 0x22 in kept:  # strings holding brackets: keep what is outside the quotes
+        outside = bytearray()
+        i = 0
+        while True:
+            j = kept.find(b'"', i)
+            if j < 0:
+                outside.extend(kept[i:])
+                break
+            outside.extend(kept[i:j])
+            i = kept.find(b'"', j + 1) + 1
+            if i == 0:
+                raise ArtefactError("not valid JSON: a string is not closed")
+        kept = bytes(outside)
+    kept = kept.replace(b"{", b"[").replace(b"}", b"]")
+    depth = 0
+    while kept:
+        if depth >= limit:
+            raise ArtefactError("the artefact nests arrays and objects deeper than max_nesting=%d" % limit)
+        peeled = kept.replace(b"[]", b"")
+        if len(peeled) == len(kept):
+            raise ArtefactError("not valid JSON: its brackets do not pair up")
+        kept = peeled
+        depth += 1
+    return depth
+
+
+def _nesting_of(obj, limit):
+    """Like check_nesting for an already parsed document (a dict passed to load), without
+    recursion: refuse one nested deeper than ``limit``."""
+    stack = [(obj, 1)]
+    while stack:
+        value, depth = stack.pop()
+        if depth > limit:
+            raise ArtefactError("the artefact nests arrays and objects deeper than max_nesting=%d" % limit)
+        if isinstance(value, dict):
+            stack.extend((v, depth + 1) for v in value.values() if isinstance(v, (dict, list, tuple)))
+        elif isinstance(value, (list, tuple)):
+            stack.extend((v, depth + 1) for v in value if isinstance(v, (dict, list, tuple)))
 
 
 def _compact_tree(obj):
@@ -402,6 +475,7 @@ def load(source, limits=None, unknown_category="error", self_check=True, compile
         lim.update(limits)
     if isinstance(source, dict):
         doc = source
+        _nesting_of(doc, lim["max_nesting"])
         verify_digest(doc)
     else:
         if isinstance(source, (bytes, bytearray)):
@@ -413,8 +487,13 @@ def load(source, limits=None, unknown_category="error", self_check=True, compile
             raise ArtefactError("the artefact is larger than max_bytes=%d" % lim["max_bytes"])
         holder = [data]
         data = None  # _verify_file_bytes drops the bytes once they are hashed and decoded
-        doc = _verify_file_bytes(holder)
-    model = Model(doc, lim, unknown_category)
+        doc = _verify_file_bytes(holder, lim["max_nesting"])
+    try:
+        model = Model(doc, lim, unknown_category)
+    except ArtefactError:
+        raise
+    except _UNEXPECTED as exc:  # a check this scorer lacks: still an ArtefactError, never a traceback
+        raise ArtefactError("%s: %s (%s)" % (UNEXPECTED_CONTENT, exc.__class__.__name__, exc))
     if compiled:
         model.compile()
     if self_check:
@@ -422,6 +501,14 @@ def load(source, limits=None, unknown_category="error", self_check=True, compile
         if not ok:
             raise ArtefactError("self-check failed: " + message)
     return model
+
+
+# Errors that mean "a check is missing in this scorer". load() turns them into an
+# ArtefactError whose message starts with UNEXPECTED_CONTENT (the fuzz campaign counts those
+# apart: each is a check to add), so bad input never ends in a traceback.
+UNEXPECTED_CONTENT = "the artefact holds content the scorer does not expect"
+_UNEXPECTED = (TypeError, KeyError, IndexError, AttributeError, OverflowError, ZeroDivisionError,
+               RuntimeError, MemoryError, ValueError)  # RecursionError is a RuntimeError
 
 
 def _read_bounded(fh, limit):
@@ -522,8 +609,20 @@ def _number(value, where):
     if isinstance(value, str) and value in _NONFINITE:
         return _NONFINITE[value]
     _need(isinstance(value, (int, float)) and not isinstance(value, bool), "%s is not a number" % where)
+    if isinstance(value, int):  # float() of a huge integer: OverflowError (MicroPython: infinity)
+        _need(-_MAX_INT_FLOAT <= value <= _MAX_INT_FLOAT, "%s is an integer beyond the float64 range" % where)
     value = float(value)
     _need(value == value, "%s is NaN" % where)
+    return value
+
+
+_MAX_INT_FLOAT = (1 << 1024) - (1 << 970)  # integers above round to infinity (or overflow)
+
+
+def _finite(value, where):
+    """A JSON number that must be finite (not "inf"/"-inf"), as a float."""
+    value = _number(value, where)
+    _need(value != _INF and value != -_INF, "%s is not finite" % where)
     return value
 
 
@@ -701,8 +800,14 @@ class Model:
         _need(isinstance(params, dict) and sorted(params) == sorted(_TRANSFORM_PARAMS[self.post_transform]),
               "post_transform %r needs the parameters %s" % (self.post_transform,
                                                              list(_TRANSFORM_PARAMS[self.post_transform])))
-        self.post_transform_params = dict((k, _number(v, "outputs.post_transform_params.%s" % k))
+        self.post_transform_params = dict((k, _finite(v, "outputs.post_transform_params.%s" % k))
                                           for k, v in params.items())
+        pp = self.post_transform_params
+        # AdaBoost divides by its total estimator weight (a sum of positive weights); an isolation
+        # forest divides path lengths by n_trees * c(max_samples) >= 0 (0 for max_samples=1,
+        # where scikit-learn takes the quotient as 1: see transform()).
+        _need(pp.get("weight_total", 1.0) > 0.0, "outputs.post_transform_params.weight_total must be > 0")
+        _need(pp.get("denominator", 0.0) >= 0.0, "outputs.post_transform_params.denominator must be >= 0")
         self.output_names = _get(outputs, "names", list, "outputs")
         self.classes = outputs.get("classes")
         self.binary_rule = outputs.get("binary_rule")
@@ -732,7 +837,9 @@ class Model:
         _need(self.combine in ("sum", "mean"), "unknown combine %r" % self.combine)
         base = _get(ens, "base_values", list, "ensemble")
         _need(0 < len(base) <= limits["max_outputs"], "base_values count out of bounds")
-        self.base_values = [_number(b, "ensemble.base_values[%d]" % i) for i, b in enumerate(base)]
+        self.base_values = [_finite(b, "ensemble.base_values[%d]" % i) for i, b in enumerate(base)]
+        if self.task == "outlier_detection":  # path lengths: never negative (keeps 2 ** -q finite)
+            _need(all(b >= 0.0 for b in self.base_values), "ensemble.base_values of an isolation forest must be >= 0")
         self.n_outputs = k = len(self.base_values)
         _need(len(self.output_names) == k, "outputs.names must name each of the %d outputs" % k)
         if self.task == "outlier_detection":
@@ -841,11 +948,13 @@ class Model:
                 append(child)
         _need(len(order) == n, "%s has unreachable nodes" % where)
         for key in cat_sets:
-            _need(key != "" and not key.strip("0123456789") and int(key) < n and feature[int(key)] >= 0,
+            _need(isinstance(key, str) and 0 < len(key) <= 10 and not key.strip("0123456789") and int(key) < n
+                  and feature[int(key)] >= 0,
                   "%s.left_categories names node %r, which is not a split" % (where, key))
         built = [None] * n
         values, thresholds, missing = arrays["value"], arrays["threshold"], arrays["missing_left"]
         categories = self.categories
+        isolation = self.task == "outlier_detection"
         for node in reversed(order):  # children before parents
             f = feature[node]
             if f == -1:
@@ -853,6 +962,9 @@ class Model:
                 if v.__class__ is not float or v != v or v == _INF or v == -_INF:
                     v = _number(v, "%s.value[%d]" % (where, node))
                     _need(abs(v) != _INF, "%s.value[%d] is not finite" % (where, node))
+                if v < 0.0 and isolation:
+                    _need(False, "%s.value[%d] is negative; an isolation forest's leaves hold path lengths"
+                          % (where, node))
                 built[node] = v
                 continue
             missing_left = missing[node]
@@ -1311,35 +1423,74 @@ class Model:
 
     # -- self-check and summary ----------------------------------------------------
     def self_check(self):
-        """Score the artefact's reference rows; return (ok, one-line message)."""
+        """Score the artefact's reference rows; return (ok, one-line message).
+
+        Raw scores (the exact values) must match bit for bit, transformed outputs and
+        decision values within SELF_CHECK_ULPS, labels exactly (same value, same JSON type).
+        ``inputs`` (the input names the rows are in order of), ``labels`` and ``decision`` are
+        compared when the artefact carries them (boxwood writes them from 0.1.x on; older
+        artefacts lack them and are checked on raw scores and outputs only)."""
         ref = self.doc.get("self_check")
         if not isinstance(ref, dict):
             return False, "the artefact carries no self_check section"
+        try:
+            return self._self_check(ref)
+        except ArtefactError as exc:
+            return False, str(exc)
+        except _UNEXPECTED as exc:  # a check this scorer lacks: fail closed
+            return False, "%s: %s (%s)" % (UNEXPECTED_CONTENT, exc.__class__.__name__, exc)
+
+    def _self_check(self, ref):
         rows, raws, outs = ref.get("rows"), ref.get("raw"), ref.get("transformed")
+        n = len(rows) if isinstance(rows, list) else 0
+        extra = {}
+        for key in ("labels", "decision"):
+            if key in ref:
+                extra[key] = ref[key]
+                _need(isinstance(ref[key], list) and len(ref[key]) == n, "self_check.%s must be a list with one "
+                      "entry per row" % key)
         if not (isinstance(rows, list) and isinstance(raws, list) and isinstance(outs, list)
                 and len(rows) == len(raws) == len(outs) and rows):
             return False, "the self_check section is malformed"
+        if "inputs" in ref and ref["inputs"] != self.input_names:
+            return False, ("self_check.inputs %s differs from the model's inputs %s: its feature or field names "
+                           "were changed" % (_short(ref["inputs"]), _short(self.input_names)))
+        labels, decision = extra.get("labels"), extra.get("decision")
+        _need(labels is None or self.task != "regression", "self_check.labels is for classifiers and outlier "
+              "detectors")
         saved, self.unknown_category = self.unknown_category, "as_missing"
         try:
             for r, row in enumerate(rows):
+                _need(isinstance(row, list), "self_check.rows[%d] is not a list" % r)
                 try:
                     got = self.raw_scores(self.prepare(_nan_for_null(row), r))
                 except RecordError as exc:
                     return False, "reference %s" % (exc,)
-                want = [_number(v, "self_check.raw") for v in raws[r]]
+                want = _numbers(raws[r], "self_check.raw[%d]" % r)
                 if self.exact_values(got) != want:
                     return False, "reference row %d: raw scores %r, expected %r" % (
                         r, self.exact_values(got), want)
                 got_t = self.transform_raw(got)
-                want_t = [_number(v, "self_check.transformed") for v in outs[r]]
+                want_t = _numbers(outs[r], "self_check.transformed[%d]" % r)
+                if len(got_t) != len(want_t):
+                    return False, "reference row %d: %d outputs, expected %d" % (r, len(got_t), len(want_t))
                 for a, b in zip(got_t, want_t):
                     if ulp_distance(a, b) > SELF_CHECK_ULPS:
                         return False, "reference row %d: output %r, expected %r" % (r, a, b)
-        except ArtefactError as exc:
-            return False, str(exc)
+                if decision is not None:
+                    got_d = self.decision_values(got)
+                    want_d = _numbers(decision[r], "self_check.decision[%d]" % r)
+                    scale = max([abs(v) for v in got_t if v == v] + [abs(self.post_transform_params.get("offset", 0.0))])
+                    if len(got_d) != len(want_d) or not all(_close(a, b, scale) for a, b in zip(got_d, want_d)):
+                        return False, "reference row %d: decision values %r, expected %r" % (r, got_d, want_d)
+                if labels is not None:
+                    got_l = self.predict_from_raw(got)
+                    if not _same_label(got_l, labels[r]):
+                        return False, "reference row %d: label %r, expected %r" % (r, got_l, labels[r])
         finally:
             self.unknown_category = saved
-        return True, "%d reference rows reproduced (raw scores exact)" % len(rows)
+        checked = "raw scores exact" + "".join(", " + k for k in ("labels", "decision", "inputs") if k in ref)
+        return True, "%d reference rows reproduced (%s)" % (len(rows), checked)
 
     def summary(self):
         """A dict describing the model (task, features, trees, nodes, depth)."""
@@ -1358,6 +1509,32 @@ class Model:
             "missing_values": self.missing_values,
             "digest": self.doc.get(DIGEST_KEY),
         }
+
+
+def _numbers(values, where):
+    """A list of JSON numbers (or "inf"/"-inf") as floats."""
+    _need(isinstance(values, list), "%s is not a list of numbers" % where)
+    return [_number(v, "%s[%d]" % (where, i)) for i, v in enumerate(values)]
+
+
+def _close(a, b, scale):
+    """Decision values: within SELF_CHECK_ULPS, or (an isolation forest's score minus its offset,
+    which may cancel) within SELF_CHECK_ULPS + 1 units in the last place of ``scale``."""
+    return ulp_distance(a, b) <= SELF_CHECK_ULPS or abs(a - b) <= (SELF_CHECK_ULPS + 1) * 2.0 ** -52 * scale
+
+
+def _same_label(a, b):
+    """Labels as JSON tells them apart: 1, 1.0, true and "1" are four different labels."""
+    if isinstance(a, bool) or isinstance(b, bool):
+        return a is b
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
+        return isinstance(a, int) == isinstance(b, int) and a == b
+    return type(a) is type(b) and a == b
+
+
+def _short(names):
+    text = repr(names)
+    return text if len(text) <= 80 else text[:77] + "..."
 
 
 # ----------------------------------------------------------------------------- math

@@ -17,8 +17,10 @@ import struct
 from pathlib import Path
 from typing import Any, Dict, Iterator, List, Union
 
+import numpy as np
 from boxwood_runtime.scorer import _DIGEST_PREFIX, FORMAT_NAME, artefact_bytes, canonical_bytes, json_float_15
 
+from ...contract import OutputContract
 from ...ir import Ensemble
 
 FORMAT_VERSION = 2
@@ -207,7 +209,33 @@ def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]
             "raw": [[number(v) for v in r] for r in ref.raw],
             "transformed": [[number(v) for v in r] for r in ref.transformed],
         }
+        doc["self_check"].update(_check_outputs(ensemble))
     return doc
+
+
+def _check_outputs(ensemble: Ensemble) -> Dict[str, Any]:
+    """What the self-check compares beyond raw scores and outputs (schema: self_check): the
+    input names the rows are in order of, the decision values and the labels, formed from the
+    source model's exact values through the workstation's output contract. They bind the fields
+    whose change leaves the raw scores alone: feature/field names, class labels, offsets."""
+    ref = ensemble.reference
+    contract = OutputContract(ensemble)
+    out: Dict[str, Any] = {"inputs": list(ensemble.fields) if ensemble.fields is not None
+                           else [f.name for f in ensemble.features]}
+    if contract.post_transform == "samme":  # the stored exact values are already decision values
+        raw = None
+        decision = np.asarray(ref.raw, dtype=np.float64)
+    else:
+        raw = np.asarray(ref.raw, dtype=np.float64)
+        decision = contract.decision_values(raw)
+    out["decision"] = [[number(float(v)) for v in r] for r in decision.reshape(len(ref.raw), -1)]
+    if ensemble.task != "regression":
+        if raw is None:  # AdaBoost: the label follows from the decision values
+            index = (decision[:, 0] > 0.0).astype(int) if decision.shape[1] == 1 else np.argmax(decision, axis=1)
+        else:
+            index = contract.label_index(raw)
+        out["labels"] = [ensemble.classes[int(i)] for i in index]
+    return out
 
 
 def _provenance(p: Dict[str, Any]) -> Dict[str, Any]:

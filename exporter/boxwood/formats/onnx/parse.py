@@ -9,6 +9,8 @@ from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
+from boxwood_runtime.scorer import DEFAULT_LIMITS, ArtefactError, check_nesting
+
 from ..registry import FormatError
 
 TREE_OPS = ("TreeEnsemble", "TreeEnsembleRegressor", "TreeEnsembleClassifier")
@@ -23,6 +25,11 @@ MASK_OPS = ("GreaterOrEqual", "LessOrEqual", "Floor", "Equal", "Or", "And", "Not
             "Less", "Constant", "Cast", "Identity")
 MAX_BYTES = 1 << 30
 META_PREFIX = "boxwood."
+# Bounds checked before anything is allocated from a claimed size (docs/hardening.md): the
+# device scorer's own limits, so whatever the reader accepts the scorer can load.
+MAX_NESTING = DEFAULT_LIMITS["max_nesting"]  # of a metadata value's JSON
+MAX_TARGETS = DEFAULT_LIMITS["max_outputs"]
+MAX_FEATURES = DEFAULT_LIMITS["max_features"]
 
 
 class OnnxReadError(FormatError):
@@ -140,7 +147,16 @@ def metadata(model: Any) -> Dict[str, Any]:
     meta = {p.key: p.value for p in model.metadata_props}
     out: Dict[str, Any] = {}
     for key, value in meta.items():
+        if not isinstance(key, str) or not isinstance(value, str):  # protobuf hands invalid UTF-8 over as bytes
+            raise OnnxReadError("a metadata_props entry (%r) holds bytes that are not UTF-8 text" % (key[:40],))
         if not key.startswith(META_PREFIX):
+            continue
+        try:  # the nesting first: json.loads recurses once per level (RecursionError)
+            check_nesting(value.encode("utf-8", "replace"), MAX_NESTING)
+        except ArtefactError as exc:
+            if "max_nesting" in str(exc):
+                raise OnnxReadError("metadata %s nests deeper than %d levels" % (key, MAX_NESTING))
+            out[key] = value  # brackets that do not pair up: not JSON, kept as text (never parsed)
             continue
         try:
             out[key] = json.loads(value)

@@ -32,9 +32,10 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
-from ...ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
-from .parse import (ML_DOMAIN, OUTPUT_OPS, TREE_OPS, Graph, InputPath, OnnxReadError, load, metadata, node_label,
-                    onnx_module)
+from ...ir import LEAF, Ensemble, Feature, ModelError, Tree
+from .guards import as_text, check_flags, check_reached, claimed_targets, meta_list, meta_reference
+from .parse import (MAX_FEATURES, MAX_TARGETS, ML_DOMAIN, OUTPUT_OPS, TREE_OPS, Graph, InputPath, OnnxReadError,
+                    load, metadata, node_label, onnx_module)
 
 
 # ----------------------------------------------------------------------------- the tree operator
@@ -66,7 +67,7 @@ _V5_MODES = {0: "BRANCH_LEQ", 1: "BRANCH_LT", 2: "BRANCH_GTE", 3: "BRANCH_GT", 4
 def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
     where = node_label(node)
     need = ("nodes_featureids", "nodes_modes", "nodes_truenodeids", "nodes_falsenodeids", "nodes_trueleafs",
-            "nodes_falseleafs", "leaf_targetids", "leaf_weights", "tree_roots")
+            "nodes_falseleafs", "leaf_targetids", "leaf_weights", "tree_roots", "n_targets")
     missing = [k for k in need if k not in a]
     if missing:
         raise OnnxReadError("%s lacks the attributes %s" % (where, ", ".join(missing)))
@@ -83,6 +84,10 @@ def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
     n = len(feats)
     if not all(len(x) == n for x in (modes, splits, tids, fids, tleaf, fleaf, miss)) or len(weights) != len(targets):
         raise OnnxReadError("%s: its node or leaf attributes have unequal lengths" % where)
+    check_flags(where, "nodes_missing_value_tracks_true", miss)
+    check_flags(where, "nodes_trueleafs", tleaf)
+    check_flags(where, "nodes_falseleafs", fleaf)
+    n_targets = claimed_targets(where, a, len(set(int(t) for t in targets)), 0)
     members = _tensor_or_list(a, "membership_values")
     sets: Dict[int, List[float]] = {}
     if any(m == 6 for m in modes):
@@ -103,12 +108,14 @@ def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
                                 % (where, len(groups), len(member_nodes)))
         sets = dict(zip(member_nodes, groups))
     trees = []
+    reached: set = set()
     for root in a["tree_roots"]:
         if not 0 <= root < n:
             raise OnnxReadError("%s: tree root %d out of range" % (where, root))
         g = _GenericTree(("n", root))
         if tleaf[root] and fleaf[root] and tids[root] == fids[root]:  # a tree that is one leaf
             g.root = ("l", tids[root])
+            reached.add(("n", root))
         stack = [g.root]
         seen = set()
         while stack:
@@ -134,7 +141,9 @@ def _trees_v5(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int]:
             g.splits[key] = (mode, int(feats[i]), value, t, f, bool(miss[i]))
             stack.extend((f, t))
         trees.append(g)
-    return trees, int(a.get("n_targets", 1))
+        reached |= seen
+    check_reached(where, [("n", i) for i in range(n)] + [("l", i) for i in range(len(weights))], reached)
+    return trees, n_targets
 
 
 def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, List[float]]:
@@ -148,7 +157,7 @@ def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, Li
         raise OnnxReadError("%s lacks the attributes %s" % (where, ", ".join(missing)))
     tree_ids, node_ids = list(a["nodes_treeids"]), list(a["nodes_nodeids"])
     feats = list(a["nodes_featureids"])
-    modes = [m.decode() if isinstance(m, bytes) else str(m) for m in a["nodes_modes"]]
+    modes = [as_text(m, where, "nodes_modes") for m in a["nodes_modes"]]
     values = _tensor_or_list(a, "nodes_values")
     if values is None:
         values = np.zeros(len(feats))
@@ -157,6 +166,7 @@ def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, Li
     n = len(tree_ids)
     if not all(len(x) == n for x in (node_ids, feats, modes, values, tids, fids, miss)):
         raise OnnxReadError("%s: its node attributes have unequal lengths" % where)
+    check_flags(where, "nodes_missing_value_tracks_true", miss)
     index = {}
     order: List[int] = []
     for i, (t, nid) in enumerate(zip(tree_ids, node_ids)):
@@ -176,6 +186,7 @@ def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, Li
             raise OnnxReadError("%s: leaf %d of tree %d has two weights for target %d" % (where, nid, t, k))
         entry[int(k)] = float(v)
     trees = []
+    reached: set = set()
     for t in order:
         root = min(i for i, tt in enumerate(tree_ids) if tt == t)
         g = _GenericTree(("n", node_ids[root]))
@@ -197,15 +208,24 @@ def _trees_v3(node: Any, a: Dict[str, Any]) -> Tuple[List[_GenericTree], int, Li
                                     bool(miss[i]))
             stack.extend((fids[i], tids[i]))
         trees.append(g)
+        reached.update((t, nid) for nid in seen)
+    check_reached(where, list(index), reached)
+    for key in leaf_weights:  # a weight on a split, or on a node no tree lists, would be dropped
+        i = index.get(key)
+        if i is None or modes[i] != "LEAF":
+            raise OnnxReadError("%s: %s weights name tree %d node %d, which is not one of its leaves"
+                                % (where, pre, key[0], key[1]))
     base = _tensor_or_list(a, "base_values")
     if classifier:
         labels = a.get("classlabels_int64s") or a.get("classlabels_strings")
         n_targets = len(labels) if labels else 0
+        if n_targets > MAX_TARGETS:
+            raise OnnxReadError("%s lists %d class labels, more than %d" % (where, n_targets, MAX_TARGETS))
         used = {k for d in leaf_weights.values() for k in d}
         if labels is not None and len(labels) == 2 and used <= {0, 1} and len(used) <= 1:
             n_targets = 1
     else:
-        n_targets = int(a.get("n_targets", 1))
+        n_targets = claimed_targets(where, a, len(set(int(k) for k in w_id)), len(base) if base is not None else 0)
     return trees, n_targets, [float(b) for b in base] if base is not None else []
 
 
@@ -304,7 +324,7 @@ def classes_from(values: Any) -> List[Any]:
     out = []
     for v in np.asarray(values).ravel():
         if isinstance(v, bytes):
-            v = v.decode("utf-8")
+            v = as_text(v, "the class labels", "a label")
         elif hasattr(v, "item"):
             v = v.item()
         out.append(v)
@@ -317,7 +337,7 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
     info: Dict[str, Any] = {"post": None, "classes": None, "binary_rule": None, "divide": None, "add": None}
     tree_post = attrs.get("post_transform", "NONE" if tree.op_type != "TreeEnsemble" else 0)
     if isinstance(tree_post, bytes):
-        tree_post = tree_post.decode()
+        tree_post = as_text(tree_post, where, "post_transform")
     tree_post = {0: "NONE", 1: "SOFTMAX", 2: "LOGISTIC", 3: "SOFTMAX_ZERO", 4: "PROBIT"}.get(tree_post, tree_post)
     if tree_post not in ("NONE", "LOGISTIC", "SOFTMAX"):
         raise OnnxReadError("%s applies post_transform %s, which boxwood does not support" % (where, tree_post))
@@ -325,7 +345,7 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
         raise OnnxReadError("%s aggregates with function %r; boxwood reads SUM" % (where, attrs["aggregate_function"]))
     if tree.op_type != "TreeEnsemble":
         agg = attrs.get("aggregate_function", b"SUM")
-        agg = agg.decode() if isinstance(agg, bytes) else agg
+        agg = as_text(agg, where, "aggregate_function") if isinstance(agg, bytes) else agg
         if agg not in ("SUM", "AVERAGE"):
             raise OnnxReadError("%s aggregates with %s; boxwood reads SUM and AVERAGE" % (where, agg))
         info["average"] = agg == "AVERAGE"
@@ -377,7 +397,10 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
             raise OnnxReadError("%s applies %s and the graph applies %s after it; boxwood reads one post-transform"
                                 % (where, tree_post, ", ".join(sorted(found))))
         found.add({"LOGISTIC": "logistic", "SOFTMAX": "softmax"}[tree_post])
-    special = _special_transform(graph, raw, down) if raw is not None and tree_post == "NONE" else None
+    special = _special_transform(graph, raw, down) if raw is not None else None
+    if special is not None and tree_post != "NONE":  # the operator's own transform, then more after it
+        raise OnnxReadError("%s applies post_transform %s and the graph then applies %s's arithmetic; boxwood "
+                            "reads one post-transform" % (where, tree_post, special[0]))
     if special is not None:
         kind, params = special
         if kind == "samme":
@@ -484,8 +507,26 @@ def _special_transform(graph: Graph, raw: str, down: List[Any]) -> Optional[Tupl
     return None
 
 
+# What the reader's own checks may have missed: still an OnnxReadError (a FormatError), never a
+# traceback. Its message starts with UNEXPECTED_CONTENT, which the fuzz campaign counts apart.
+UNEXPECTED_CONTENT = "the ONNX file holds content the reader does not expect"
+_UNEXPECTED = (TypeError, KeyError, IndexError, AttributeError, OverflowError, ZeroDivisionError, RecursionError,
+               MemoryError, ValueError)
+
+
 def read_onnx(source: Any) -> Ensemble:
-    """Read an ONNX tree-ensemble graph (path, bytes or ModelProto) into an Ensemble."""
+    """Read an ONNX tree-ensemble graph (path, bytes or ModelProto) into an Ensemble. Every bad
+    input ends in OnnxReadError with a one-line reason (docs/hardening.md, "ONNX files")."""
+    try:
+        return _read_onnx(source)
+    except OnnxReadError:
+        raise
+    except _UNEXPECTED as exc:
+        text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        raise OnnxReadError("%s: %s (%s)" % (UNEXPECTED_CONTENT, type(exc).__name__, text[:200]))
+
+
+def _read_onnx(source: Any) -> Ensemble:
     model = load(source)
     graph = Graph(model)
     trees = [n for n in graph.nodes if n.op_type in TREE_OPS and n.domain == ML_DOMAIN]
@@ -508,7 +549,7 @@ def read_onnx(source: Any) -> Ensemble:
     attrs = graph.attrs(tree)
     meta = metadata(model)
     semantics = meta.get("boxwood.semantics") if isinstance(meta.get("boxwood.semantics"), dict) else {}
-    names = meta.get("boxwood.feature_names")
+    names = meta_list(meta, "boxwood.feature_names", (str,))
     if tree.op_type == "TreeEnsemble":
         generic, n_targets = _trees_v5(tree, attrs)
         op_base: List[float] = []
@@ -517,6 +558,8 @@ def read_onnx(source: Any) -> Ensemble:
     n_features = path.n_features or (len(names) if isinstance(names, list) else None)
     if n_features is None:
         n_features = 1 + max([s[1] for g in generic for s in g.splits.values()] or [0])
+    if not 0 < n_features <= MAX_FEATURES:  # before any list of that size is made
+        raise OnnxReadError("the graph input has %d features; boxwood reads 1 to %d" % (n_features, MAX_FEATURES))
     info = outputs_of(graph, tree, attrs)
     ir_trees, max_code = _to_ir_trees(generic, max(n_targets, 1), path, where, n_features)
 
@@ -525,7 +568,9 @@ def read_onnx(source: Any) -> Ensemble:
     base = list(op_base) if op_base else [0.0] * k
     if len(base) != k:
         raise OnnxReadError("%s has %d base values for %d targets" % (where, len(base), k))
-    leading = int(semantics.get("leading_base_trees", 0) or 0)
+    leading = semantics.get("leading_base_trees", 0) or 0
+    if not isinstance(leading, int) or isinstance(leading, bool) or leading < 0:
+        raise OnnxReadError("metadata boxwood.semantics.leading_base_trees must be a count, not %r" % (leading,))
     if leading:
         if leading != k or len(ir_trees) < k:
             raise OnnxReadError("metadata boxwood.semantics says %d leading base-value trees; the graph has %d targets"
@@ -599,6 +644,9 @@ def read_onnx(source: Any) -> Ensemble:
     for i, name in enumerate(names):
         if i in max_code:
             cats = categories_meta.get(name)
+            if isinstance(cats, list) and not all(isinstance(c, (str, int, float)) and not isinstance(c, bool)
+                                                  for c in cats):
+                raise OnnxReadError("metadata boxwood.categories[%r] must list numbers or strings" % name)
             if not isinstance(cats, list) or len(cats) <= max_code[i]:
                 cats = list(range(max_code[i] + 1))
             features.append(Feature(str(name), "categorical", list(cats)))
@@ -610,7 +658,10 @@ def read_onnx(source: Any) -> Ensemble:
                     and semantics.get("compare_precision") == compare)
     provenance = meta.get("boxwood.provenance") if isinstance(meta.get("boxwood.provenance"), dict) else {}
     provenance = dict(provenance)
-    provenance.setdefault("estimator", meta.get("boxwood.source_estimator") or "onnx:%s" % tree.op_type)
+    estimator = provenance.get("estimator", meta.get("boxwood.source_estimator"))
+    if estimator is not None and not isinstance(estimator, str):
+        raise OnnxReadError("metadata boxwood.provenance.estimator must be text, not %s" % type(estimator).__name__)
+    provenance["estimator"] = estimator or "onnx:%s" % tree.op_type
     pre = meta.get("boxwood.preprocessing")
     if isinstance(pre, dict) and pre.get("in_graph") is False:
         # a pipeline's tree part: the graph takes the preprocessed features; the ensemble read
@@ -648,12 +699,8 @@ def read_onnx(source: Any) -> Ensemble:
         provenance=provenance,
     )
     ref = meta.get("boxwood.reference")
-    if exact_source and isinstance(ref, dict):
-        ensemble.reference = Reference(
-            rows=[[None if v is None else (float(v) if v in ("inf", "-inf") else v) for v in row] for row in ref["rows"]],
-            raw=[[float(v) for v in r] for r in ref["raw"]],
-            transformed=[[float(v) for v in r] for r in ref["transformed"]],
-        )
+    if exact_source and ref is not None:
+        ensemble.reference = meta_reference(ref)
     try:
         return ensemble.check()
     except ModelError as exc:
