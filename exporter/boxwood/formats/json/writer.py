@@ -222,6 +222,12 @@ def _check_outputs(ensemble: Ensemble) -> Dict[str, Any]:
     contract = OutputContract(ensemble)
     out: Dict[str, Any] = {"inputs": list(ensemble.fields) if ensemble.fields is not None
                            else [f.name for f in ensemble.features]}
+    if ensemble.calibration is not None:
+        # CalibratedClassifierCV has no decision_function; predict is the class of the largest
+        # probability (the first of equal maxima), from the reference probabilities
+        probs = np.asarray(ref.transformed, dtype=np.float64).reshape(len(ref.raw), -1)
+        out["labels"] = [ensemble.classes[int(i)] for i in np.argmax(probs, axis=1)]
+        return out
     if contract.post_transform == "samme":  # the stored exact values are already decision values
         raw = None
         decision = np.asarray(ref.raw, dtype=np.float64)
