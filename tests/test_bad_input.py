@@ -60,7 +60,7 @@ def test_pretty_printed_file_still_verifies(gb, tmp_path):
 @pytest.mark.parametrize("mutate,message", [
     (lambda d: d["ensemble"]["trees"][0]["left"].__setitem__(0, 0), "out of range"),
     (lambda d: d["ensemble"]["trees"][0]["feature"].__setitem__(0, 999), "out of range"),
-    (lambda d: d.__setitem__("format_version", 3), "format_version 3"),
+    (lambda d: d.__setitem__("format_version", 4), "format_version 4"),
     (lambda d: d.__setitem__("format", "something-else"), "not a boxwood"),
     (lambda d: d["ensemble"]["trees"][0]["value"].pop(), "entries"),
     (lambda d: d["ensemble"]["base_values"].append(0.0), "names"),

@@ -191,7 +191,7 @@ def _flip(path, offset):
 def _future_format(folder):
     doc = json.loads((folder / "model.json").read_bytes())
     del doc["boxwood_digest"]
-    doc["format_version"] = 3
+    doc["format_version"] = 4
     (folder / "model.json").write_bytes(artefact_bytes(doc))  # a valid digest for the new body
     write_manifest(folder)  # as if a newer boxwood made the bundle with this scorer.py
 
@@ -224,7 +224,7 @@ TAMPER = {
                   r"^model\.json has \d+ bytes, manifest\.json says \d+ \(changed, truncated or damaged\)$"),
     "no_manifest": (lambda f: (f / "manifest.json").unlink(), r"^missing file: manifest\.json"),
     "wrong_leaf_valid_digest": (_wrong_leaf, r"^model\.json: self-check failed: reference row \d+: raw scores"),
-    "future_format": (_future_format, r"^model\.json: format_version 3 is not one this scorer \(0\.1\.0\) reads; "
+    "future_format": (_future_format, r"^model\.json: format_version 4 is not one this scorer \(0\.1\.0\) reads; "
                                       r"it reads 1, 2$"),
     "other_scorer_version": (_other_scorer_version, r"^scorer\.py is version 0\.1\.0; the bundle was made for 9\.9\.9$"),
 }

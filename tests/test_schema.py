@@ -303,7 +303,7 @@ def _one_base_value(doc):
 NEGATIVE = [
     # (id, zoo case, mutation returning the JSON path the violation must be reported at)
     ("missing_format", "hgbr_categorical", _drop(None, "format")),
-    ("format_version_3", "hgbr_categorical", lambda d: (d.update(format_version=3), "$.format_version")[1]),
+    ("format_version_4", "hgbr_categorical", lambda d: (d.update(format_version=4), "$.format_version")[1]),
     ("format_version_as_text", "gbr_squared_error", lambda d: (d.update(format_version="1"), "$.format_version")[1]),
     ("threshold_abc", "hgbr_categorical", _set_threshold("abc")),
     ("threshold_nan_text", "gbr_squared_error", _set_threshold("nan")),

@@ -1,4 +1,4 @@
-"""Write the boxwood JSON artefact (format version 2).
+"""Write the boxwood JSON artefact (format version 2, or 3 when it needs it).
 
 The layout is documented by schemas/tree-ensemble.schema.json and the page
 docs/artefact-format.md. The file is the canonical JSON of the document (keys
@@ -18,9 +18,23 @@ from typing import Any, Dict, Iterator, List, Union
 
 from boxwood_runtime.scorer import _DIGEST_PREFIX, FORMAT_NAME, artefact_bytes, canonical_bytes, json_float_15
 
-from ...ir import Ensemble
+from ...ir import FORMAT_3_STEPS, Ensemble
 
-FORMAT_VERSION = 2
+FORMAT_VERSION = 2  # what every artefact without a format-3 feature is written as
+FORMAT_VERSION_3 = 3
+
+
+def needs_format_3(ensemble: Ensemble) -> bool:
+    """True when the artefact uses something format version 2 lacks, so that a scorer
+    reading 1..2 refuses it with its "newer format" message and every artefact without
+    such a feature keeps its version-2 bytes: a preprocessing step "lookup" (one-hot and
+    target encoding) or "arithmetic" (affine scalers)."""
+    return any(st.get("op") in FORMAT_3_STEPS for f in ensemble.features if f.source is not None
+               for st in f.source["steps"])
+
+
+def format_version(ensemble: Ensemble) -> int:
+    return FORMAT_VERSION_3 if needs_format_3(ensemble) else FORMAT_VERSION
 
 
 def text_reading() -> Dict[str, Any]:
@@ -152,7 +166,7 @@ def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]
         outputs["post_transform_params"] = {k: number(v) for k, v in sorted(ensemble.post_transform_params.items())}
     doc: Dict[str, Any] = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
+        "format_version": format_version(ensemble),
         "task": ensemble.task,
         "inputs": inputs,
         "outputs": outputs,
