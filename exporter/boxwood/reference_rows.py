@@ -48,7 +48,8 @@ def probe_rows(ensemble: Ensemble, n_rows: int = 6) -> List[List[Any]]:
 def _raw_field_rows(ensemble: Ensemble, thresholds: List[List[float]], n_rows: int) -> List[List[Any]]:
     """Reference rows for an ensemble with preprocessing: raw field values. A field that
     is encoded cycles through its categories; a numeric field takes the thresholds of the
-    feature it feeds. One more row has every field missing."""
+    feature it feeds (a scaled one, the raw values either side of them). One more row has
+    every field missing (except fields whose encoder refuses a missing value)."""
     per_field: List[List[Any]] = [[] for _ in ensemble.fields]
     for j, f in enumerate(ensemble.features):
         fi = ensemble.fields.index(f.source["field"])
@@ -65,7 +66,14 @@ def _raw_field_rows(ensemble: Ensemble, thresholds: List[List[float]], n_rows: i
     rows = []
     for r in range(n_rows):
         rows.append([vals[(r * len(vals)) // n_rows] if vals else 0.0 for vals in per_field])
-    rows.append([None] * len(ensemble.fields))
+    missing: List[Any] = [None] * len(ensemble.fields)
+    for f in ensemble.features:
+        steps = f.source["steps"]
+        if steps and steps[0]["op"] in ("encode", "lookup") and steps[0]["unknown"] == "error" \
+                and "missing" not in steps[0]:
+            # an encoder that refuses a missing value (not seen in fitting): keep a category
+            missing[ensemble.fields.index(f.source["field"])] = steps[0]["categories"][0]
+    rows.append(missing)
     return rows
 
 
