@@ -487,3 +487,100 @@ def test_lookup_values_come_from_scikit_learn_transform():
         want = [float(names[j] == "%s_%s" % (f.source["field"], c)) for c in st["categories"]]
         assert st["values"] == want, (names[j], st)
     assert copy.deepcopy(st) == st
+
+
+# ----------------------------------------------------------------------------- the C target
+def _numeric_steps_pipeline():
+    """Numbers only (the C target takes no text): one-hot and target encoding of numeric
+    code columns, every scaler; diabetes (scikit-learn's copy) with NaN holes."""
+    from sklearn import datasets
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import HistGradientBoostingRegressor
+    from sklearn.impute import SimpleImputer
+    from sklearn.model_selection import KFold
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import (MaxAbsScaler, MinMaxScaler, OneHotEncoder, RobustScaler, StandardScaler,
+                                       TargetEncoder)
+
+    X, y = datasets.load_diabetes(return_X_y=True)
+    X = np.array(X)
+    X[:, 1] = np.digitize(X[:, 2], np.quantile(X[:, 2], [0.25, 0.5, 0.75])) * 10.0  # codes 0, 10, 20, 30
+    X[:, 9] = np.digitize(X[:, 3], np.quantile(X[:, 3], [0.3, 0.6])) + 1.0  # codes 1, 2, 3
+    X = zoo._with_nan(X, 0.05, seed=9)
+    X[:, 9] = np.where(np.isnan(X[:, 9]), 1.0, X[:, 9])  # the one-hot column: no NaN
+    ct = ColumnTransformer([
+        ("onehot", OneHotEncoder(handle_unknown="ignore", drop="first", sparse_output=False), [9]),
+        ("target", TargetEncoder(target_type="continuous", cv=KFold(4, shuffle=True, random_state=0)), [1]),
+        ("std", StandardScaler(), [0, 2]),
+        ("minmax", MinMaxScaler(feature_range=(-2, 2), clip=True), [3]),
+        ("maxabs", make_pipeline(SimpleImputer(strategy="median"), MaxAbsScaler()), [4]),
+        ("robust", RobustScaler(), [8]),
+    ], remainder="drop")
+    model = make_pipeline(ct, HistGradientBoostingRegressor(max_iter=25, random_state=0, early_stopping=False))
+    return model.fit(X, y), X
+
+
+def test_numeric_lookup_and_scaler_steps_run_in_c(tmp_path):
+    """The steps in C (-std=c99 -Wall -Wextra -pedantic -Werror, at -O2 and -O3
+    -march=native, where a fused multiply-add would show): scikit-learn's predict bit for
+    bit on data rows, every code, unseen codes, missing values and raw values beside
+    each scaled threshold; IR -> C -> IR identity; a planted scaler constant caught."""
+    from boxwood.formats.c import check as c_check
+    from boxwood.formats.c import reader as c_reader
+    from boxwood.formats.c import writer as c_writer
+    from boxwood.formats.c.evaluators import CEvaluator
+    from boxwood_runtime import native
+
+    if native.find_compiler() is None:
+        pytest.skip("no C compiler on this machine")
+    model, X = _numeric_steps_pipeline()
+    ensemble = build(model)
+    ops = {st["op"] for f in ensemble.features for st in f.source["steps"]}
+    assert ops == {"lookup", "arithmetic", "impute"}
+    path = tmp_path / "steps.c"
+    c_writer.write(ensemble, path)
+    back = c_reader.read_c(path)
+    assert c_check.same_model(ensemble, back) is None
+    rows = [[None if v != v else float(v) for v in r] for r in X]
+    for code in (0.0, 10.0, 20.0, 30.0, 99.0, None):
+        for k in (1, 9):
+            r = list(rows[0])
+            r[k] = code
+            rows.append(r)
+    for j, f in enumerate(ensemble.features):
+        seq = arithmetic_of(f.source["steps"])
+        if seq is None:
+            continue
+        fi = ensemble.fields.index(f.source["field"])
+        for t in sorted({t.threshold[i] for t in ensemble.trees for i in range(t.n_nodes) if t.feature[i] == j}):
+            for v in raw_around(seq, t):
+                r = list(rows[1])
+                r[fi] = v
+                rows.append(r)
+    Xs = np.array([[np.nan if v is None else v for v in r] for r in rows])
+    want = model.predict(Xs)
+    for flags in [("-O2",), ("-O3", "-march=native")]:
+        got = CEvaluator(path, back, flags).evaluate(rows)
+        assert np.array_equal(got.raw[:, 0], want), flags  # identity regressor: predict is the raw score
+    doc = c_writer.to_texts(ensemble, "m")[0]
+    assert "PFX_step_cat_value" not in doc and "m_step_cat_value" in doc
+    # planted fault: a scaler constant one ulp off, in the C tables: verify fails
+    text = path.read_text()
+    std = ensemble.features[[f.source["field"] for f in ensemble.features].index("x0")].source["steps"][0]
+    mean = std["sequence"][0][1]
+    from boxwood_runtime.csource import c_double
+    assert text.count(c_double(mean)) == 1
+    planted = tmp_path / "planted.c"
+    planted.write_text(text.replace(c_double(mean), c_double(math.nextafter(mean, math.inf))))
+    result = verify(model, str(planted))
+    assert not result.passed
+
+
+def test_text_lookup_steps_are_refused_by_the_c_target_naming_field_and_step(tmp_path):
+    from boxwood import formats
+    from boxwood.formats.c import writer as c_writer
+
+    _, ensemble, _ = zoo.exported("pipe_hgbc_onehot_scaled")
+    with pytest.raises(formats.FormatError, match=r"field 'sex'.*step 1 encodes text categories"):
+        c_writer.write(ensemble, tmp_path / "p.c")
+    assert not list(tmp_path.iterdir())
