@@ -584,3 +584,21 @@ def test_text_lookup_steps_are_refused_by_the_c_target_naming_field_and_step(tmp
     with pytest.raises(formats.FormatError, match=r"field 'sex'.*step 1 encodes text categories"):
         c_writer.write(ensemble, tmp_path / "p.c")
     assert not list(tmp_path.iterdir())
+
+
+# ----------------------------------------------------------------------------- batch evaluator
+@pytest.mark.parametrize("name", ["pipe_hgbc_onehot_scaled", "pipe_hgbc_target_multiclass"])
+def test_batch_evaluator_runs_the_steps_as_the_pipeline_does(name):
+    """The numpy batch evaluator on raw records (its prepare runs the scorer's steps):
+    raw scores bit for bit and labels equal to scikit-learn's on the same DataFrame."""
+    from boxwood_runtime.batch import BatchModel
+
+    case = zoo.fitted(name)
+    _, model = _device(case.model)
+    batch = BatchModel(model)
+    records = [[float("nan") if v is None else v for v in r] for r in case.rows]
+    X = batch.prepare(records)
+    raw = batch.exact_values(batch.raw_scores(X))
+    want = np.asarray(case.model.decision_function(case.X), dtype=np.float64).reshape(len(records), -1)
+    assert np.array_equal(np.asarray(raw).reshape(want.shape), want)
+    assert np.array_equal(np.ravel(batch.predict(records)), np.ravel(case.model.predict(case.X)))
