@@ -225,7 +225,7 @@ TAMPER = {
     "no_manifest": (lambda f: (f / "manifest.json").unlink(), r"^missing file: manifest\.json"),
     "wrong_leaf_valid_digest": (_wrong_leaf, r"^model\.json: self-check failed: reference row \d+: raw scores"),
     "future_format": (_future_format, r"^model\.json: format_version 4 is not one this scorer \(0\.1\.0\) reads; "
-                                      r"it reads 1, 2$"),
+                                      r"it reads 1, 2, 3$"),
     "other_scorer_version": (_other_scorer_version, r"^scorer\.py is version 0\.1\.0; the bundle was made for 9\.9\.9$"),
 }
 
