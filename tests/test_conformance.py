@@ -28,6 +28,7 @@ import numpy as np
 import pytest
 
 import boxwood_runtime
+from boxwood.reference_rows import arithmetic_of, raw_around
 from boxwood.sources.model import SourceModel
 from boxwood_runtime.scorer import ulp_distance
 
@@ -39,9 +40,11 @@ MIN_ROWS = 1000
 
 def _pipeline_routes(ensemble):
     """For an ensemble with preprocessing: per feature, the raw field index it reads and
-    whether a threshold probe on the field reaches the feature unchanged (impute only)."""
+    whether a threshold probe on the field reaches the feature unchanged (impute only) or
+    through a scaler (issue 15: then the probe is the raw value mapped back)."""
     field_of = [ensemble.fields.index(f.source["field"]) for f in ensemble.features]
-    direct = [all(st["op"] == "impute" for st in f.source["steps"]) for f in ensemble.features]
+    direct = [all(st["op"] == "impute" for st in f.source["steps"])
+              or arithmetic_of(f.source["steps"]) is not None for f in ensemble.features]
     return field_of, direct
 
 
@@ -60,10 +63,12 @@ def _pipeline_value_probes(ensemble):
         if takes_missing:
             probes.append((fi, None))
         for st in steps:
-            if st["op"] == "encode":
+            if st["op"] in ("encode", "lookup"):
                 probes.extend((fi, c) for c in st["categories"])
                 if st["unknown"] != "error":
                     probes.append((fi, "zz-never-seen"))
+                if st["op"] == "lookup" and ("missing" in st or st["unknown"] != "error") and not takes_missing:
+                    probes.append((fi, None))  # NaN: a fitted category, or unknown
     return probes
 
 
@@ -91,6 +96,12 @@ def probe_rows(case, ensemble, limit=4000):
             if not math.isfinite(thr) or (f, thr) in seen:
                 continue
             seen.add((f, thr))
+            seq = arithmetic_of(ensemble.features[f].source["steps"]) if ensemble.fields is not None else None
+            if seq is not None:  # a scaled column: the raw values either side of the threshold
+                for v in raw_around(seq, thr):
+                    probes.extend((field_of[f], w) for w in (v, float(np.nextafter(v, -np.inf)),
+                                                             float(np.nextafter(v, np.inf))))
+                continue
             values = [thr, float(np.nextafter(thr, -np.inf)), float(np.nextafter(thr, np.inf))]
             if ensemble.compare_precision == "float32":
                 t32 = np.float32(thr)
@@ -287,12 +298,12 @@ def test_encoder_unknown_error_is_followed():
 
 def test_unsupported_pipeline_step_is_named():
     from sklearn.pipeline import make_pipeline
-    from sklearn.preprocessing import StandardScaler
+    from sklearn.preprocessing import PowerTransformer
 
     from boxwood.sources import UnsupportedModel, read_model
 
     case = zoo.fitted("gbr_squared_error")
-    pipe = make_pipeline(StandardScaler(), case.model.__class__(n_estimators=5)).fit(case.X, case.y)
+    pipe = make_pipeline(PowerTransformer(), case.model.__class__(n_estimators=5)).fit(case.X, case.y)
     with pytest.raises(UnsupportedModel) as err:
         read_model(pipe)
-    assert "standardscaler (StandardScaler)" in str(err.value) and "OrdinalEncoder" in str(err.value)
+    assert "powertransformer (PowerTransformer)" in str(err.value) and "OrdinalEncoder" in str(err.value)

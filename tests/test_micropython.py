@@ -192,7 +192,8 @@ def test_zoo_bit_for_bit_on_micropython(name, tmp_path):
     print("%s: transformed outputs within %d ulp of CPython" % (name, worst))
 
 
-OLD_CASES = ["gbr_squared_error", "gbc_multiclass", "hgbc_categorical", "hgbr_nan", "hgbr_poisson"]
+OLD_CASES = ["gbr_squared_error", "gbc_multiclass", "hgbc_categorical", "hgbr_nan", "hgbr_poisson",
+             "pipe_hgbc_onehot_scaled", "pipe_gbr_target_encoded"]  # issue 15: lookup and arithmetic steps
 
 
 @pytest.mark.parametrize("name", OLD_CASES)

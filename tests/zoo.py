@@ -203,6 +203,11 @@ def _build(name: str) -> Case:
         "pipe_ttr_hgbr_log": lambda: (make_pipeline(SimpleImputer(strategy="mean"),
                                                     TTR(HGBR(**hgb), func=np.log, inverse_func=np.exp)),
                                       "diabetes+nan"),
+        "pipe_hgbc_onehot_scaled": lambda: (_pipe_hgbc_onehot_scaled(), "diabetes_strings_class"),
+        "pipe_gbr_target_encoded": lambda: (_pipe_gbr_target(), "diabetes_strings"),
+        "pipe_hgbc_target_multiclass": lambda: (_pipe_hgbc_target_multiclass(), "diabetes_strings_3class"),
+        "pipe_gbc_onehot_infrequent": lambda: (_pipe_gbc_onehot_infrequent(), "diabetes_strings_class"),
+        "pipe_etr_onehot_strict": lambda: (_pipe_etr_onehot_strict(), "diabetes_strings"),
     }
     model, data = spec[name]()
     if data == "diabetes_frame":
@@ -216,12 +221,14 @@ def _build(name: str) -> Case:
         X, y = _data("diabetes")
         X = np.array(X)
         X[:, 1] = (X[:, 1] > 0).astype(float)  # 'sex' as category codes 0.0 / 1.0
-    elif data in ("diabetes_strings", "diabetes_strings_class"):
+    elif data in ("diabetes_strings", "diabetes_strings_class", "diabetes_strings_3class"):
         X, y = _diabetes_frame(nan_rate=0.06)
         for col in ("sex", "bmi_band"):  # raw string columns, NaN for missing
             X[col] = X[col].astype(object).where(X[col].notna(), np.nan)
         if data.endswith("_class"):
             y = np.digitize(y, np.quantile(y, [0.5]))
+        elif data.endswith("_3class"):
+            y = np.digitize(y, np.quantile(y, [0.33, 0.66]))
     elif data == "friedman1_multi":
         X, y = _data("friedman1")
         y = np.c_[y, np.sin(X[:, 0] * 3.0) + X[:, 3]]  # a second target for multi-output
@@ -264,7 +271,10 @@ FOREST_CASES = [
     "iforest_subsets", "ada_binary", "ada_multiclass",
 ]
 # Pipelines whose preprocessing the artefact carries (issue 5): records are raw fields.
-PIPELINE_CASES = ["pipe_hgbr_encoded", "pipe_gbc_strict_encoder", "pipe_rfr_constant_impute"]
+PIPELINE_CASES = ["pipe_hgbr_encoded", "pipe_gbc_strict_encoder", "pipe_rfr_constant_impute",
+                  # issue 15: one-hot, affine scalers, target encoding
+                  "pipe_hgbc_onehot_scaled", "pipe_gbr_target_encoded", "pipe_hgbc_target_multiclass",
+                  "pipe_gbc_onehot_infrequent", "pipe_etr_onehot_strict"]
 # CalibratedClassifierCV (issue 15): cv=3 (one calibrated copy per fold), ensemble=False,
 # and prefit classifiers (sklearn.frozen.FrozenEstimator), isotonic and sigmoid.
 CALIBRATION_CASES = [
@@ -368,6 +378,89 @@ def _pipe_impute_hgbc():
 
     return make_pipeline(SimpleImputer(strategy="median"),
                          HistGradientBoostingClassifier(max_iter=10, random_state=0, early_stopping=False))
+def _pipe_hgbc_onehot_scaled():
+    """As a data scientist writes it: one-hot the text columns (unseen -> all zeros),
+    standardise the numbers (NaN passes through), histogram boosting."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import HistGradientBoostingClassifier
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import OneHotEncoder, StandardScaler
+
+    pre = ColumnTransformer([("cat", OneHotEncoder(handle_unknown="ignore"), ["sex", "bmi_band"]),
+                             ("num", StandardScaler(), NUMERIC_DIABETES)])
+    return Pipeline([("pre", pre), ("model", HistGradientBoostingClassifier(max_iter=30, random_state=0,
+                                                                             early_stopping=False))])
+
+
+def _pipe_gbr_target():
+    """Target-encode the text columns (continuous target; NaN is a category), impute and
+    robust-scale the numbers, classic boosting."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import GradientBoostingRegressor
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.model_selection import KFold
+    from sklearn.preprocessing import RobustScaler, TargetEncoder
+
+    pre = ColumnTransformer([("cat", TargetEncoder(target_type="continuous", cv=KFold(5, shuffle=True, random_state=0)),
+                              ["sex", "bmi_band"]),
+                             ("num", make_pipeline(SimpleImputer(strategy="median"), RobustScaler()),
+                              ["age", "bmi", "bp", "s1", "s5"])])
+    return make_pipeline(pre, GradientBoostingRegressor(n_estimators=30, max_depth=3, random_state=0))
+
+
+def _pipe_hgbc_target_multiclass():
+    """Multiclass target encoding (one column per class and feature), MinMaxScaler with
+    clip on the numbers (NaN passes through), histogram boosting (which routes NaN)."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import HistGradientBoostingClassifier
+    from sklearn.model_selection import StratifiedKFold
+    from sklearn.preprocessing import MinMaxScaler, TargetEncoder
+
+    pre = ColumnTransformer([("cat", TargetEncoder(target_type="multiclass",
+                                                   cv=StratifiedKFold(5, shuffle=True, random_state=0)),
+                              ["bmi_band", "sex"]),
+                             ("num", MinMaxScaler(feature_range=(-1, 2), clip=True), ["age", "bmi", "bp", "s5"])])
+    return make_pipeline_(pre, HistGradientBoostingClassifier(max_iter=20, random_state=0, early_stopping=False))
+
+
+def _pipe_gbc_onehot_infrequent():
+    """One-hot with infrequent categories grouped (unseen -> the infrequent column), the
+    first category dropped, dense output; imputed and max-abs-scaled numbers; boosting."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import GradientBoostingClassifier
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import MaxAbsScaler, OneHotEncoder
+
+    pre = ColumnTransformer([
+        ("cat", OneHotEncoder(handle_unknown="infrequent_if_exist", min_frequency=60, drop="first",
+                              sparse_output=False), ["bmi_band", "sex"]),
+        ("num", make_pipeline(SimpleImputer(strategy="mean"), MaxAbsScaler()), NUMERIC_DIABETES)])
+    return make_pipeline(pre, GradientBoostingClassifier(n_estimators=30, max_depth=3, random_state=0))
+
+
+def _pipe_etr_onehot_strict():
+    """One-hot that refuses unseen values, drop="if_binary" (sex keeps one column),
+    StandardScaler without centring then RobustScaler on the numbers; extra trees."""
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import ExtraTreesRegressor
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import OneHotEncoder, RobustScaler, StandardScaler
+
+    pre = ColumnTransformer([
+        ("cat", make_pipeline(SimpleImputer(strategy="most_frequent"),
+                              OneHotEncoder(handle_unknown="error", drop="if_binary")), ["sex", "bmi_band"]),
+        ("num", make_pipeline(SimpleImputer(strategy="median"), StandardScaler(with_mean=False),
+                              RobustScaler(quantile_range=(10.0, 90.0))), ["age", "bmi", "bp", "s1", "s5"])],
+        sparse_threshold=0.0)
+    return make_pipeline(pre, ExtraTreesRegressor(n_estimators=10, max_depth=6, random_state=0))
+
+
+def make_pipeline_(*steps):
+    from sklearn.pipeline import make_pipeline
+    return make_pipeline(*steps)
 
 
 @functools.lru_cache(maxsize=None)

@@ -100,6 +100,14 @@ class Feature:
     #    in categories); NaN becomes "missing" when that key is present (None = NaN), a
     #    Python None becomes "none" when present (its fitted code); else they count as
     #    unknown; an unknown value is an error or becomes "unknown".
+    #   {"op": "lookup", "categories": [...], "values": [...], "unknown": "error" | number,
+    #    ["missing": number], ["none": number]}: a value becomes values[its index in
+    #    categories] (one output column of a OneHotEncoder or TargetEncoder); NaN, None
+    #    and unseen values as for "encode" (format version 3);
+    #   {"op": "arithmetic", "sequence": [[operation, constant...], ...]}: float64
+    #    operations in order on a number ("sub" x - c, "div" x / c, "mul" x * c, "add"
+    #    x + c, "clip" [lo, hi]: below lo becomes lo, above hi becomes hi, NaN stays):
+    #    an affine scaler's transform, op for op (format version 3).
     source: Optional[Dict[str, Any]] = None
 
     @property
@@ -381,10 +389,33 @@ def _check_source(f: Feature, fields: Optional[List[str]]) -> None:
             ok = (set(step) - {"missing", "none"} == {"op", "categories", "unknown"}
                   and isinstance(step["categories"], list) and step["categories"]
                   and (step["unknown"] in ("error", None) or isinstance(step["unknown"], float)))
+        elif op == "lookup":
+            ok = (set(step) - {"missing", "none"} == {"op", "categories", "values", "unknown"}
+                  and isinstance(step["categories"], list) and step["categories"]
+                  and isinstance(step["values"], list) and len(step["values"]) == len(step["categories"])
+                  and all(_finite(v) for v in step["values"])
+                  and all(_finite(step[k]) for k in ("missing", "none") if k in step)
+                  and (step["unknown"] == "error" or _finite(step["unknown"])))
+        elif op == "arithmetic":
+            seq = step.get("sequence")
+            ok = (set(step) == {"op", "sequence"} and isinstance(seq, list) and bool(seq)
+                  and all(isinstance(s, list) and s and s[0] in ARITHMETIC_OPS
+                          and len(s) == (3 if s[0] == "clip" else 2) and all(_finite(c) for c in s[1:])
+                          for s in seq))
         else:
             ok = False
         if not ok:
             raise ModelError("feature %r: malformed preprocessing step %r" % (f.name, step))
+
+
+# The operations of an "arithmetic" preprocessing step.
+ARITHMETIC_OPS = ("sub", "div", "mul", "add", "clip")
+# Steps a format version 2 artefact cannot carry.
+FORMAT_3_STEPS = ("lookup", "arithmetic")
+
+
+def _finite(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
 
 
 def _one_of(what: str, value: Any, allowed: Sequence[Any]) -> None:

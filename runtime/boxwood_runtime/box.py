@@ -599,6 +599,13 @@ def input_fields(doc):
                     unknown = step.get("unknown")
                     steps.append("encode %d categories (unknown: %s)" % (
                         len(cats), "missing" if unknown is None else unknown))
+                elif step.get("op") == "lookup":
+                    cats = step.get("categories") or []
+                    kind = "categorical (%d categories)" % len(cats)
+                    steps.append("lookup %d categories (unknown: %s)" % (len(cats), step.get("unknown")))
+                elif step.get("op") == "arithmetic":
+                    steps.append("scale: " + ", ".join(" ".join(str(v) for v in op)
+                                                       for op in step.get("sequence") or []))
             steps.append("-> feature %s" % f.get("name"))
         out.append((name, kind, steps))
     return out

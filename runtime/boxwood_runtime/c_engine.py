@@ -50,11 +50,31 @@ static int PFX_prepare(const double *x, double *v)
         xv = x[PFX_source_field[j]];
         for (s = PFX_step_start[j]; s < PFX_step_start[j + 1]; ++s) {
             int known = xv == xv;
-            if (PFX_step_kind[s] == 0) { /* impute: a NaN becomes the fitted value */
+            int kind = PFX_step_kind[s];
+            if (kind == 0) { /* impute: a NaN becomes the fitted value */
                 if (!known) {
                     xv = PFX_step_value[s];
                 }
-            } else { /* encode: a value becomes its position among the categories */
+            } else if (kind >= 3) { /* one scaler operation, in float64, in the source's order */
+                double c = PFX_step_value[s];
+                if ((PFX_step_flags[s] & 4) && (xv > DBL_MAX || xv < -DBL_MAX)) {
+                    return PFXU_ERR_INFINITE; /* scikit-learn's scalers refuse infinite input */
+                }
+                if (kind == 3) {
+                    xv = xv - c;
+                } else if (kind == 4) {
+                    xv = xv / c;
+                } else if (kind == 5) {
+                    xv = xv * c;
+                } else if (kind == 6) {
+                    xv = xv + c;
+                } else if (xv < c) { /* 7 clip: low bound in step_value, high bound in step_unknown */
+                    xv = c;
+                } else if (xv > PFX_step_unknown[s]) {
+                    xv = PFX_step_unknown[s];
+                }
+            } else { /* encode (1): a value becomes its position among the categories; lookup (2): the
+                        value listed for it */
                 int c, first = PFX_step_cat_start[s], count = PFX_step_cat_start[s + 1] - first;
                 int found = -1;
                 if (!known && (PFX_step_flags[s] & 1)) {
@@ -68,7 +88,7 @@ static int PFX_prepare(const double *x, double *v)
                     }
                 }
                 if (found >= 0) {
-                    xv = (double)found;
+                    xv = kind == 2 ? PFX_step_cat_value[first + found] : (double)found;
                 } else if (PFX_step_flags[s] & 2) {
                     return PFXU_ERR_CATEGORY;
                 } else {

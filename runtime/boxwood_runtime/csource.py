@@ -136,6 +136,10 @@ def describe_refusal(model):
     return None
 
 
+# The C step kinds of an arithmetic step's operations (c_engine.ENGINE, PFX_prepare).
+ARITHMETIC_KINDS = {"sub": 3, "div": 4, "mul": 5, "add": 6, "clip": 7}
+
+
 def _plan(model):
     """Per tree feature: (source field index or None, steps as tuples, categories or None, text?)."""
     doc_feats = model.doc["inputs"]["features"]
@@ -163,15 +167,26 @@ def _plan(model):
                                            % (where, k + 1))
                     steps.append(("impute", float(step["value"])))
                     continue
+                if step["op"] == "arithmetic":  # one table row per operation; flag 4 starts the step
+                    for n, op in enumerate(step["sequence"]):
+                        steps.append(("arithmetic", op[0], float(op[1]), float(op[2]) if op[0] == "clip" else 0.0,
+                                      n == 0))
+                    continue
                 if any(isinstance(c, str) for c in step["categories"]):
                     raise CTargetError("%s: step %d encodes text categories (%s); the C target takes numbers "
                                        "only (use the JSON artefact on a box that has Python, or encode on "
                                        "the host)" % (where, k + 1, ", ".join(repr(c) for c in step["categories"][:5])))
+                if "none" in step and step["op"] == "lookup":
+                    raise CTargetError("%s: step %d gives Python None its own value, which a C double cannot "
+                                       "carry" % (where, k + 1))
                 unknown = step["unknown"]
-                steps.append(("encode", [float(c) for c in step["categories"]],
+                codes = [float(c) for c in step["categories"]]
+                steps.append((step["op"], codes,
                               "error" if unknown == "error" else (math.nan if unknown is None else float(unknown)),
                               "missing" in step,
-                              math.nan if step.get("missing") is None else float(step["missing"])))
+                              math.nan if step.get("missing") is None else float(step["missing"]),
+                              [float(v) for v in step["values"]] if step["op"] == "lookup"
+                              else [float(i) for i in range(len(codes))]))
         plan.append((field, steps, cats, text))
     return plan
 
@@ -303,6 +318,7 @@ def generate(model, prefix="model"):
         _table(lines, "uint32_t", "PFX_catset", catset, lambda w: "0x%08xu" % w, per_line=6)
     if has_steps:
         fields, starts, kinds, svalue, sflags, smissing, sunknown, cstart, cvals = [], [0], [], [], [], [], [], [0], []
+        results = []
         for field, steps, _, _ in plan:
             fields.append(field)
             for st in steps:
@@ -312,14 +328,22 @@ def generate(model, prefix="model"):
                     sflags.append(0)
                     smissing.append(0.0)
                     sunknown.append(0.0)
+                elif st[0] == "arithmetic":  # kinds 3..7: sub, div, mul, add, clip (high bound in step_unknown)
+                    _, name, c, hi, first = st
+                    kinds.append(ARITHMETIC_KINDS[name])
+                    svalue.append(c)
+                    sflags.append(4 if first else 0)
+                    smissing.append(0.0)
+                    sunknown.append(hi)
                 else:
-                    _, cats, unknown, has_missing, missing = st
-                    kinds.append(1)
+                    op, cats, unknown, has_missing, missing, values = st
+                    kinds.append(1 if op == "encode" else 2)
                     svalue.append(0.0)
                     sflags.append((1 if has_missing else 0) | (2 if unknown == "error" else 0))
                     smissing.append(missing if has_missing else 0.0)
                     sunknown.append(0.0 if unknown == "error" else unknown)
                     cvals.extend(cats)
+                    results.extend(values)
                 cstart.append(len(cvals))
             starts.append(len(kinds))
         if not kinds:  # a pipeline of pass-through fields: keep the step tables legal C
@@ -333,6 +357,7 @@ def generate(model, prefix="model"):
         _table(lines, "double", "PFX_step_unknown", sunknown, c_double, per_line=4)
         _table(lines, _int_type(0, cstart[-1] + 1), "PFX_step_cat_start", cstart, str)
         _table(lines, "double", "PFX_step_cat", cvals, c_double, per_line=4)
+        _table(lines, "double", "PFX_step_cat_value", results, c_double, per_line=4)
     for name in model.input_names:
         _check_label(name, "the input name %r" % name[:60])
     _table(lines, "char *const", "PFX_input_names", model.input_names, c_string, static=False, per_line=1)

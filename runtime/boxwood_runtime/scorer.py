@@ -33,7 +33,9 @@ except ImportError:  # MicroPython ports built without array: plain lists
 
 FORMAT_NAME = "boxwood.tree-ensemble"
 # 1: text trimmed, None = NaN; 2: text read as pandas does; 3: 2 plus what version 2 lacks
-# (outputs.calibration, outputs.target_steps). A writer says 3 only when an artefact uses it.
+# (outputs.calibration, outputs.target_steps, the preprocessing steps "lookup" and
+# "arithmetic": one-hot, target encoding, affine scalers). A writer says 3 only when an
+# artefact uses one of them.
 FORMAT_VERSIONS = (1, 2, 3)
 SCORER_VERSION = "0.1.0"
 DIGEST_KEY = "boxwood_digest"
@@ -626,6 +628,69 @@ def _finite(value, where):
     return value
 
 
+
+_ARITHMETIC = ("sub", "div", "mul", "add", "clip")
+
+
+def _finite_number(v, where):
+    _need(isinstance(v, (int, float)) and not isinstance(v, bool), "%s must hold numbers" % where)
+    v = float(v)
+    _need(v == v and v != _INF and v != -_INF, "%s must hold finite numbers" % where)
+    return v
+
+
+def _arithmetic(step, at):
+    """An "arithmetic" step's operations as (name, constants) pairs, checked."""
+    seq = _get(step, "sequence", list, at)
+    _need(0 < len(seq) <= 16, "%s.sequence must list 1 to 16 operations" % at)
+    out = []
+    for k, item in enumerate(seq):
+        where = "%s.sequence[%d]" % (at, k)
+        _need(isinstance(item, list) and len(item) >= 2 and item[0] in _ARITHMETIC,
+              "%s must be [operation, constant] with an operation among %s" % (where, ", ".join(_ARITHMETIC)))
+        _need(len(item) == (3 if item[0] == "clip" else 2), "%s has the wrong number of constants" % where)
+        consts = tuple(_finite_number(c, where) for c in item[1:])
+        out.append((item[0],) + consts)
+    return tuple(out)
+
+
+def _run_arithmetic(ops, v, row, label):
+    """A scaler's float64 operations in order (NaN passes through, as in numpy)."""
+    if v is None:
+        return _NAN
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise RecordError(row, label, "expected a number, got %s %r" % (type(v).__name__, v))
+    try:
+        x = float(v)
+    except OverflowError:  # an integer too large for a float
+        raise RecordError(row, label, "%d is out of the float64 range" % v)
+    if x == _INF or x == -_INF:
+        raise RecordError(row, label, "infinity, which the scaler does not accept")
+    for op in ops:
+        name = op[0]
+        if name == "sub":
+            x = x - op[1]
+        elif name == "div":
+            x = x / op[1] if op[1] != 0.0 else _ieee_divide(x, op[1])
+        elif name == "mul":
+            x = x * op[1]
+        elif name == "add":
+            x = x + op[1]
+        else:  # clip: numpy.clip keeps NaN
+            if x < op[1]:
+                x = op[1]
+            elif x > op[2]:
+                x = op[2]
+    return x
+
+
+def _ieee_divide(x, c):
+    """x / 0.0 as IEEE 754 gives it (Python raises instead)."""
+    if x != x or x == 0.0:
+        return _NAN
+    negative = (x < 0) != (math.copysign(1.0, c) < 0)
+    return -_INF if negative else _INF
+
 class Model:
     """A loaded, validated ensemble. Use :func:`load` to make one."""
 
@@ -757,7 +822,11 @@ class Model:
                         _need(replaces in ("nan", "none"), "%s.replaces must be \"nan\" or \"none\"" % at)
                     steps.append(("impute", value, replaces))
                     continue
-                _need(op == "encode", "%s.op %r is not a step this scorer knows" % (at, op))
+                if op == "arithmetic" and version >= 3:
+                    steps.append(("arithmetic", _arithmetic(step, at)))
+                    continue
+                _need(op == "encode" or (op == "lookup" and version >= 3),
+                      "%s.op %r is not a step this scorer knows" % (at, op))
                 cats = _get(step, "categories", list, at)
                 _need(0 < len(cats) <= limits["max_categories"], "%s has no or too many categories" % at)
                 codes = {}
@@ -784,6 +853,15 @@ class Model:
                     _need(none == "unknown" or (isinstance(none, (int, float)) and not isinstance(none, bool)),
                           "%s.none must be a number" % at)
                     none = none if none == "unknown" else float(none)
+                if op == "lookup":  # the same matching; a category becomes its value, not its code
+                    values = _get(step, "values", list, at)
+                    _need(len(values) == len(cats), "%s.values must have one value per category" % at)
+                    for c, value in zip(cats, values):
+                        codes[c] = _finite_number(value, "%s.values" % at)
+                    _need(unknown == "error" or unknown == unknown, "%s.unknown must be a number" % at)
+                    _need(missing == "unknown" or missing == missing, "%s.missing must be a number" % at)
+                    steps.append(("lookup", codes, unknown, missing, cats, none))
+                    continue
                 steps.append(("encode", codes, unknown, missing, cats, none))
                 self._unseen_missing[j] = True
             self._sources.append((fi, tuple(steps)))
@@ -1059,6 +1137,9 @@ class Model:
                     raise RecordError(row, self._label[j], "NaN, which an imputer for None does not accept")
                 if (is_nan and replaces != "none") or (is_none and replaces != "nan"):
                     v = step[1]
+                continue
+            if step[0] == "arithmetic":
+                v = _run_arithmetic(step[1], v, row, self._label[j])
                 continue
             _, codes, unknown, missing_code, cats, none_code = step
             if is_nan and missing_code != "unknown":

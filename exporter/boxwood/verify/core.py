@@ -216,9 +216,12 @@ def verify(model_or_path: Any, artefact_paths: Union[PathLike, Sequence[PathLike
         # A pipeline: records hold raw fields. Probes are made in feature space (no data
         # rows as bases) and mapped back to fields through the encoders.
         made = probes_mod.generate(source, sides, [], budget=probes, seed=seed)
-        for r, kind, origin, target in zip(probes_mod.to_field_rows(made.rows, source), made.kinds, made.origins,
-                                           made.targets):
+        for r, kind, origin, target in zip(probes_mod.to_field_rows(made.rows, source, made.targets), made.kinds,
+                                           made.origins, made.targets):
             rows.add(r, kind, origin, target=target)
+        if probes:  # every category (unseen, missing) and the raw values around each scaled threshold
+            for r, origin, target in probes_mod.field_probes(source, budget=probes):
+                rows.add(r, "special", origin, target=target)
         rows.probed_nodes |= made.probed_nodes
         notes.append("the model carries preprocessing: probes are made for the features and mapped back to the "
                      "raw fields (an encoded feature takes the category nearest to the probe's code)")

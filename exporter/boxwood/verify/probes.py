@@ -32,6 +32,7 @@ from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
 import numpy as np
 
 from ..ir import LEAF, Ensemble, Tree
+from ..reference_rows import arithmetic_of, forward, raw_around
 from .. import numerics
 from ..numerics import Domain, numeric_domain
 
@@ -582,25 +583,103 @@ def round_rows_float32(rows: Sequence[Sequence[Any]], source: Ensemble, keep_all
     return out, kept
 
 
-def to_field_rows(rows: Sequence[Sequence[Any]], source: Ensemble) -> List[List[Any]]:
+def to_field_rows(rows: Sequence[Sequence[Any]], source: Ensemble,
+                  targets: Optional[Sequence[Optional[int]]] = None) -> List[List[Any]]:
     """Feature-space rows as raw-field rows, for an ensemble with preprocessing (a
-    pipeline): an encoded feature's code becomes its category (the nearest code, clamped);
-    other values pass through; a field no feature reads is None."""
+    pipeline). A field takes the value of the feature a probe targets when it feeds
+    that feature, else of the first feature it feeds, mapped back through that feature's
+    steps: an encoded feature's code becomes its category (the nearest code, clamped); a
+    looked-up feature's value becomes the category whose table value is nearest (the
+    first on a tie); a scaled feature's value becomes the raw value whose transform is
+    nearest; other values pass through; a field no feature reads is None."""
     fields = source.fields
+    field_of = [fields.index(f.source["field"]) for f in source.features]
+    first = {}
+    for j, fi in enumerate(field_of):
+        first.setdefault(fi, j)
     out = []
-    for r in rows:
+    for n, r in enumerate(rows):
+        pick = dict(first)
+        t = targets[n] if targets is not None and n < len(targets) else None
+        if t is not None and 0 <= t < len(field_of):
+            pick[field_of[t]] = t
         new: List[Any] = [None] * len(fields)
-        done = [False] * len(fields)
-        for j, f in enumerate(source.features):
-            fi = fields.index(f.source["field"])
-            if done[fi]:
-                continue
-            done[fi] = True
-            v = r[j]
-            enc = next((st for st in f.source["steps"] if st.get("op") == "encode"), None)
-            if enc is not None and isinstance(v, float) and math.isfinite(v):
-                cats = enc["categories"]
-                v = cats[int(min(max(round(v), 0), len(cats) - 1))]
-            new[fi] = v
+        for fi, j in pick.items():
+            new[fi] = _field_value(r[j], source.features[j].source["steps"])
         out.append(new)
+    return out
+
+
+def _field_value(v: Any, steps: Sequence[Dict[str, Any]]) -> Any:
+    """A raw value that the steps turn into (about) ``v``."""
+    if not isinstance(v, float) or not math.isfinite(v):
+        return v
+    enc = next((st for st in steps if st.get("op") in ("encode", "lookup")), None)
+    if enc is not None:
+        cats = enc["categories"]
+        if enc["op"] == "encode":
+            return cats[int(min(max(round(v), 0), len(cats) - 1))]
+        gaps = [abs(w - v) for w in enc["values"]]
+        return cats[gaps.index(min(gaps))]
+    seq = arithmetic_of(steps)
+    if seq is not None:
+        near = raw_around(seq, v)
+        if near:
+            return min(near, key=lambda x: abs(forward(seq, x) - v))
+    return v
+
+
+def field_probes(source: Ensemble, budget: int = 2000) -> List[Tuple[List[Any], str, Optional[int]]]:
+    """Raw-field probes for a pipeline's steps, as (row, origin, target feature): every
+    category of every encoder or lookup table, an unseen value and a missing value in
+    each such field; for a scaled field, the two raw float64 neighbours whose scaled
+    values bracket each split threshold of the feature (``reference_rows.raw_around``:
+    the last raw value going left and the first going right). The other fields hold a
+    base row's values (each field's first category, or the middle threshold)."""
+    fields = source.fields
+    thresholds: List[List[float]] = [[] for _ in source.features]
+    for t in source.trees:
+        for i in range(t.n_nodes):
+            f = t.feature[i]
+            if f != LEAF and t.left_categories[i] is None and math.isfinite(t.threshold[i]):
+                thresholds[f].append(t.threshold[i])
+    base: List[Any] = [None] * len(fields)
+    specs: List[Tuple[int, Any, str, int]] = []
+    done = set()
+    for j, f in enumerate(source.features):
+        fi = fields.index(f.source["field"])
+        steps = f.source["steps"]
+        enc = next((st for st in steps if st.get("op") in ("encode", "lookup")), None)
+        if enc is not None:
+            cats = enc["categories"]
+            if base[fi] is None:
+                base[fi] = cats[0]
+            if fi in done:
+                continue
+            done.add(fi)
+            textual = any(isinstance(c, str) for c in cats)
+            unseen: Any = "\x00unseen"
+            if not textual:
+                unseen = float(max(c for c in cats if isinstance(c, (int, float)))) + 1.5
+            for c in cats:
+                specs.append((fi, c, "category %r" % (c,), j))
+            specs.append((fi, unseen, "unseen category %r" % (unseen,), j))
+            specs.append((fi, None, "missing", j))
+            continue
+        seq = arithmetic_of(steps)
+        if seq is None:
+            continue
+        ts = sorted(set(thresholds[j]))
+        if base[fi] is None:
+            mid = raw_around(seq, ts[len(ts) // 2]) if ts else []
+            base[fi] = mid[0] if mid else 0.0
+        for t in ts:
+            for x, side in zip(raw_around(seq, t), ("last raw value going left", "first raw value going right")):
+                specs.append((fi, x, "%s of threshold %r of %r" % (side, t, f.name), j))
+    base = [0.0 if v is None else v for v in base]
+    out = []
+    for fi, v, what, j in specs[:budget]:
+        row = list(base)
+        row[fi] = v
+        out.append((row, "%s in %r" % (what, fields[fi]), j))
     return out

@@ -16,7 +16,8 @@ from pathlib import Path
 from typing import Any, Dict, List, Optional, Tuple, Union
 
 from boxwood_runtime.c_engine import ENGINE
-from boxwood_runtime.csource import BINARY_RULE_CODES, MARKER, TARGET_STEP_CODES, TASK_CODES, TRANSFORM_CODES, engine_id
+from boxwood_runtime.csource import (ARITHMETIC_KINDS, BINARY_RULE_CODES, MARKER, TARGET_STEP_CODES, TASK_CODES,
+                                     TRANSFORM_CODES, engine_id)
 
 from ...ir import LEAF, Ensemble, Feature, ModelError, Reference, Tree
 from ..registry import DamagedArtefact, FormatError
@@ -262,13 +263,25 @@ def to_ensemble(text: str, where: str = "C file") -> Ensemble:
         svalue, sflags = tb.table("step_value"), tb.table("step_flags")
         smissing, sunknown = tb.table("step_missing"), tb.table("step_unknown")
         cstart, cvals = tb.table("step_cat_start"), tb.table("step_cat")
+        cresults = tb.table("step_cat_value", len(cvals))
+        arith_names = {k: name for name, k in ARITHMETIC_KINDS.items()}
         for j, f in enumerate(features):
             steps: List[Dict[str, Any]] = []
             for s in range(sstart[j], sstart[j + 1]):
                 kind = _index(kinds, s, "step", where)
                 if kind == 0:
                     steps.append({"op": "impute", "value": _index(svalue, s, "step", where), "replaces": "nan"})
-                elif kind == 1:
+                elif kind in arith_names:
+                    flags = _index(sflags, s, "step", where)
+                    op = [arith_names[kind], _index(svalue, s, "step", where)]
+                    if kind == ARITHMETIC_KINDS["clip"]:
+                        op.append(_index(sunknown, s, "step", where))
+                    if flags & 4 or not steps or steps[-1]["op"] != "arithmetic":
+                        if not flags & 4:
+                            raise FormatError("%s: step %d continues a scaler step that was not started" % (where, s))
+                        steps.append({"op": "arithmetic", "sequence": []})
+                    steps[-1]["sequence"].append(op)
+                elif kind in (1, 2):
                     flags = _index(sflags, s, "step", where)
                     lo, hi = _index(cstart, s, "step", where), _index(cstart, s + 1, "step", where)
                     if not 0 <= lo <= hi <= len(cvals):
@@ -278,6 +291,11 @@ def to_ensemble(text: str, where: str = "C file") -> Ensemble:
                             "unknown": "error" if flags & 2 else (None if unknown != unknown else unknown)}
                     if flags & 1:
                         step["missing"] = None if smissing[s] != smissing[s] else smissing[s]
+                    if kind == 2:
+                        step["op"] = "lookup"
+                        step["values"] = list(cresults[lo:hi])
+                    elif list(cresults[lo:hi]) != [float(i) for i in range(hi - lo)]:
+                        raise FormatError("%s: step %d encodes, but its value table is not 0, 1, ..." % (where, s))
                     steps.append(step)
                 else:
                     raise FormatError("%s: step %d has an unknown kind %r" % (where, s, kind))

@@ -75,6 +75,13 @@ def describe_inputs(fields: Optional[List[str]], features: List[Tuple[str, Optio
                     unknown = step.get("unknown")
                     entry["steps"].append("encode %d categories (unknown: %s)"
                                           % (len(cats), "missing" if unknown is None else unknown))
+                elif step.get("op") == "lookup":
+                    cats = step.get("categories") or []
+                    entry["kind"], entry["categories"] = "categorical", len(cats)
+                    entry["steps"].append("lookup %d categories (unknown: %s)" % (len(cats), step.get("unknown")))
+                elif step.get("op") == "arithmetic":
+                    entry["steps"].append("scale: " + ", ".join(
+                        " ".join(str(v) for v in op) for op in step.get("sequence") or []))
             entry["steps"].append("-> feature %s" % name)
         out.append(entry)
     return out

@@ -21,9 +21,9 @@ import numpy as np
 from boxwood_runtime.scorer import _DIGEST_PREFIX, FORMAT_NAME, artefact_bytes, canonical_bytes, json_float_15
 
 from ...contract import OutputContract
-from ...ir import Ensemble
+from ...ir import FORMAT_3_STEPS, Ensemble
 
-FORMAT_VERSION = 2
+FORMAT_VERSION = 2  # what every artefact without a format-3 feature is written as
 FORMAT_VERSION_3 = 3
 
 
@@ -31,9 +31,16 @@ def needs_format_3(ensemble: Ensemble) -> bool:
     """True when ``ensemble`` uses something format version 2 cannot carry (then the
     artefact says 3, and older scorers refuse it with their "format_version ... is not one
     this scorer reads" message); False keeps version 2 and the bytes of every older
-    artefact. Today: calibration (``outputs.calibration``) and target steps
-    (``outputs.target_steps``)."""
-    return ensemble.calibration is not None or bool(ensemble.target_steps)
+    artefact. Today: calibration (``outputs.calibration``), target steps
+    (``outputs.target_steps``) and the preprocessing steps "lookup" (one-hot and target
+    encoding) and "arithmetic" (affine scalers)."""
+    return (ensemble.calibration is not None or bool(ensemble.target_steps)
+            or any(st.get("op") in FORMAT_3_STEPS for f in ensemble.features if f.source is not None
+                   for st in f.source["steps"]))
+
+
+def format_version(ensemble: Ensemble) -> int:
+    return FORMAT_VERSION_3 if needs_format_3(ensemble) else FORMAT_VERSION
 
 
 def _target_step(step: Dict[str, Any]) -> Dict[str, Any]:
@@ -191,7 +198,7 @@ def _document(ensemble: Ensemble, trees: List[Dict[str, Any]]) -> Dict[str, Any]
         outputs["target_steps"] = [_target_step(st) for st in ensemble.target_steps]
     doc: Dict[str, Any] = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION_3 if needs_format_3(ensemble) else FORMAT_VERSION,
+        "format_version": format_version(ensemble),
         "task": ensemble.task,
         "inputs": inputs,
         "outputs": outputs,

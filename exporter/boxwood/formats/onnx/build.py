@@ -409,7 +409,7 @@ def preprocessing_statement(ensemble: Ensemble) -> Dict[str, Any]:
     the raw field it comes from and the steps (the JSON artefact's ``source``)."""
     return {
         "in_graph": False,
-        "graph_input": "the preprocessed feature vector (after imputation and encoding), in feature order",
+        "graph_input": "the preprocessed feature vector (after imputation, encoding and scaling), in feature order",
         "fields": list(ensemble.fields or []),
         "features": [{"name": f.name, "source": f.source} for f in ensemble.features],
     }
@@ -438,5 +438,5 @@ def _doc(ensemble: Ensemble) -> str:
             "Missing values are NaN; a categorical column takes the index of the category in "
             "metadata boxwood.categories." % (ensemble.provenance.get("estimator", "a model"), names)
             + (" The model's preprocessing is NOT in this graph: the input is the preprocessed feature "
-               "vector (after imputation and encoding); metadata boxwood.preprocessing lists each feature's "
+               "vector (after imputation, encoding and scaling); metadata boxwood.preprocessing lists each feature's "
                "raw field and steps." if ensemble.fields is not None else ""))

@@ -35,7 +35,7 @@ import numpy as np
 from ...ir import LEAF, Ensemble, Feature, ModelError, Tree
 from .guards import as_text, check_flags, check_reached, claimed_targets, meta_list, meta_reference
 from .parse import (MAX_FEATURES, MAX_TARGETS, ML_DOMAIN, OUTPUT_OPS, TREE_OPS, Graph, InputPath, OnnxReadError,
-                    load, metadata, node_label, onnx_module)
+                    load, metadata, node_label, onnx_module, target_steps_of)
 
 
 # ----------------------------------------------------------------------------- the tree operator
@@ -430,42 +430,6 @@ def outputs_of(graph: Graph, tree: Any, attrs: Dict[str, Any]) -> Dict[str, Any]
                     raise OnnxReadError("%s must compare the raw score with the constant 0" % node_label(n))
                 info["binary_rule"] = "raw_gt_0" if n.op_type == "Greater" else "raw_ge_0"
     return info
-
-
-_STEP_OPS = {"Exp": "exp", "Mul": "mul", "Add": "add", "Sub": "sub", "Div": "div"}
-
-
-def target_steps_of(graph: Graph, raw: str) -> Tuple[List[Dict[str, Any]], set]:
-    """A regressor's target steps (docs/wrappers.md), read from the graph: the ops between the
-    post-transform node (the node that takes the raw score: Identity or Exp) and the graph
-    output "prediction", each an Exp or a Mul / Add / Sub / Div of the running value (first
-    input) by a constant (second input) with one value per output or one for all. Returns
-    (steps in order, the ids of their nodes); none when "prediction" comes straight from the
-    post-transform (or is no graph output)."""
-    if "prediction" not in graph.outputs:
-        return [], set()
-    steps: List[Dict[str, Any]] = []
-    nodes = set()
-    node = graph.producer.get("prediction")
-    while node is not None and raw not in node.input:
-        op = _STEP_OPS.get(node.op_type)
-        if op is None or node.domain not in ("", "ai.onnx"):
-            raise OnnxReadError("%s computes the prediction after the post-transform; boxwood reads Exp, or Mul, "
-                                "Add, Sub and Div by a constant there" % node_label(node))
-        if op == "exp":
-            steps.append({"op": "exp"})
-        else:
-            c = graph.const(node.input[1]) if len(node.input) == 2 else None
-            if c is None or graph.const(node.input[0]) is not None:
-                raise OnnxReadError("%s must %s the running prediction (first input) by a constant (second input)"
-                                    % (node_label(node), op))
-            steps.append({"op": op, "values": [float(v) for v in np.asarray(c, dtype=np.float64).ravel()]})
-        nodes.add(id(node))
-        node = graph.producer.get(node.input[0])
-    if node is None and steps:
-        raise OnnxReadError("the prediction's steps do not start at the raw score")
-    steps.reverse()
-    return steps, nodes
 
 
 def _scalar(graph: Graph, node: Any, other_than: str) -> Optional[float]:
