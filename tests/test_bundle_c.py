@@ -295,6 +295,37 @@ def test_numeric_pipeline_runs_its_steps_in_c_on_the_host(cache, tmp_path):
     assert any(v != v for r in rows for v in r) and done.stdout.strip().splitlines()[-1].startswith("PASS")
 
 
+@pytest.mark.parametrize("name", ["cal_hgbc_isotonic_multiclass", "cal_hgbc_sigmoid_binary_prefit"])
+def test_calibrated_classifier_bundle_on_the_host_and_the_m4(name, cache, tmp_path):
+    """CalibratedClassifierCV (docs/calibration.md): P_raw gives every fold's own
+    decision_function side by side (scikit-learn's calibrated_classifiers_[f].estimator), bit for
+    bit; P_predict gives predict_proba of all classes within OUT_ULPS; on the host and, where the
+    toolchain is installed, on the emulated Cortex-M4."""
+    _need("make", "cc")
+    case = zoo.fitted(name)
+    joblib.dump(case.model, tmp_path / "m.joblib")
+    folder = tmp_path / "b"
+    assert main(["bundle", str(tmp_path / "m.joblib"), "--target", "c", "-o", str(folder)]) == 0
+    rows = main_c_rows(folder)
+    X = sklearn_input(case, rows)
+    raw = np.hstack([np.asarray(cc.estimator.decision_function(X), dtype=np.float64).reshape(len(rows), -1)
+                     for cc in case.model.calibrated_classifiers_])
+    out = np.asarray(case.model.predict_proba(X), dtype=np.float64)
+    targets = ["host"] + ([] if board.unavailable_reason() else ["qemu"])
+    for target in targets:
+        copy_dir = tmp_path / target
+        shutil.copytree(folder, copy_dir)
+        done = make(copy_dir, target)
+        assert done.returncode == 0, done.stderr + done.stdout[-2000:]
+        results = board.parse_selftest_output(done.stdout)
+        assert len(results) == len(rows) >= 6
+        for i, (rc, got_raw, got_out) in enumerate(results):
+            assert rc == 0
+            assert [bits(v) for v in got_raw] == [bits(v) for v in raw[i]], (target, i)
+            assert len(got_out) == out.shape[1] and max(ulps(a, b) for a, b in zip(got_out, out[i])) <= OUT_ULPS
+        assert done.stdout.strip().splitlines()[-1].startswith("PASS"), done.stdout[-500:]
+
+
 def test_a_wrong_expected_value_makes_the_example_fail(made, tools, tmp_path):
     """Planted fault: one expected raw value one ulp off. The example prints FAIL and exits 1
     on the board, and the bundle is not made (the post-write check fails: exit 1)."""

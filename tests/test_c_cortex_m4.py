@@ -25,8 +25,7 @@ from boxwood.numerics import ulp_distance
 from boxwood.sources.model import SourceEvaluator
 from test_conformance import probe_rows
 
-C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES
-           and n not in zoo.CALIBRATION_CASES]  # refused by name (tests/test_calibration.py)
+C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES]  # calibration cases included
 PROBES = 60  # threshold probes per model, besides the reference rows
 ULPS = 4
 
@@ -52,7 +51,7 @@ def test_zoo_model_on_an_emulated_cortex_m4(name, toolchain, tmp_path):
     # the C inputs: NaN for missing, a text category as its position (as the header says)
     x = CInputs(back).matrix(rows)
     n_exact = want.raw.shape[1]
-    run = board.run_selftest(tmp_path / "m4", "m", [tmp_path / "m.c"], x.tolist(), n_exact, ensemble.n_outputs)
+    run = board.run_selftest(tmp_path / "m4", "m", [tmp_path / "m.c"], x.tolist(), n_exact, want.transformed.shape[1])
     assert all(rc == 0 for rc, _, _ in run.results)
     raw = np.array([r for _, r, _ in run.results])
     out = np.array([o for _, _, o in run.results])

@@ -39,8 +39,7 @@ from test_conformance import probe_rows
 
 pytestmark = pytest.mark.skipif(native.find_compiler() is None, reason="no C compiler on this machine")
 
-C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES
-           and n not in zoo.CALIBRATION_CASES]  # refused by name (tests/test_calibration.py)
+C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES]  # calibration cases included
 ULPS = 4
 FLAG_SETS = [("-O2",), ("-O3", "-march=native")]
 
@@ -250,6 +249,50 @@ def test_verify_catches_planted_faults_in_a_c_file(fault, tmp_path):
     assert not result.passed
     assert result.check("structure").status == "fail"
     assert result.check("empirical: raw").status == "fail"
+
+
+# CalibratedClassifierCV in C: planted faults in the calibration tables (the checks of the
+# checker), and contraction into FMA that the engine's volatile products must prevent.
+def _nudge(tok):
+    v = float.fromhex(tok)
+    return float(np.nextafter(v, np.inf)).hex()
+
+
+@pytest.mark.parametrize("name,table,edit", [
+    ("cal_gbc_isotonic_binary_prefit", "cal_x", lambda v: v[:3] + [_nudge(v[3])] + v[4:]),  # a knot moved one float step
+    ("cal_hgbc_isotonic_multiclass", "cal_y", lambda v: v[:1] + [_nudge(v[1])] + v[2:]),
+    ("cal_hgbc_sigmoid_binary_prefit", "cal_a", lambda v: [(float.fromhex(v[0]) * 1.01).hex()] + v[1:]),  # sigmoid a
+    ("cal_gbc_sigmoid_multiclass", "cal_b", lambda v: v[:-1] + [_nudge(v[-1])]),
+])
+def test_verify_catches_planted_calibration_faults_in_a_c_file(name, table, edit, tmp_path):
+    case, ensemble, _ = zoo.exported(name)
+    path = tmp_path / "m.c"
+    c_writer.write(ensemble, path)
+    clean = verify(case.model, str(path))
+    assert clean.passed, clean.summary()
+    text = path.read_text()
+    path.write_text(_edit_table(text, c_reader.parse(text)[0] + "_" + table, edit))
+    back = c_reader.read_c(path)  # the file still reads: the verifier, not the reader, must catch it
+    assert c_check.same_model(ensemble, back) is not None
+    result = verify(case.model, str(path))
+    assert not result.passed
+    assert result.check("structure").status == "fail"
+
+
+@pytest.mark.parametrize("name", zoo.CALIBRATION_CASES)
+def test_calibration_stage_survives_contraction_into_fma(name, written):
+    """GNU C mode contracts a * b + c into one fused multiply-add wherever it can
+    (-ffp-contract=fast, gcc's documented default outside ISO C mode); on an FMA machine
+    (-march=native) the interpolation and the sigmoid's a * t + b would round once instead of
+    twice. The engine's volatile products keep scikit-learn's bits (0 ulps measured on x86-64)."""
+    case, _, path = written(name)
+    back = c_reader.read_c(path)
+    rows = probe_rows(case, back)
+    want = SourceEvaluator(case.model, back).evaluate(rows)
+    got = CEvaluator(path, back, ("-O3", "-march=native", "-std=gnu99", "-ffp-contract=fast")).evaluate(rows)
+    assert np.array_equal(got.raw, want.raw)
+    assert int(ulp_distance(got.transformed, want.transformed).max()) <= ULPS
+    assert got.labels == want.labels
 
 
 def test_changed_scoring_code_is_refused(tmp_path):

@@ -13,7 +13,8 @@ Why this code computes the source's bits (docs/c-target.md):
   infinity, so values at or beyond FLT_MAX + half an ulp become infinities here first);
 * raw scores start at the base value and add one leaf per tree, in tree order, in double:
   no multiplication meets an addition anywhere in the raw path, so floating-point
-  contraction (FMA) has nothing to fuse, and reassociation needs -ffast-math, which the
+  contraction (FMA) has nothing to fuse (the calibration stage's two products that meet an
+  addition go through a volatile temporary), and reassociation needs -ffast-math, which the
   file refuses (``__FAST_MATH__``); ``FLT_EVAL_METHOD`` must be 0 (no excess precision);
 * every loop is bounded by a table size or by the model's depth; no recursion, no malloc,
   no stdio; only ``P_predict`` and ``P_label`` call libm (exp, pow; expm1 for target steps);
@@ -234,7 +235,9 @@ static int PFX_walk(const double *v, double *acc, int nan_possible)
     return PFXU_OK;
 }
 
-#if PFXU_TRANSFORM == 4 || PFXU_TRANSFORM == 5
+/* a calibrated classifier's folds use their softmax only for a probability response */
+#define PFXU_USES_SOFTMAX ((PFXU_TRANSFORM == 4 || PFXU_TRANSFORM == 5) && (!PFXU_CALIBRATED || PFXU_CAL_PROBABILITY))
+#if PFXU_USES_SOFTMAX || (PFXU_CALIBRATED && PFXU_CAL_ROW_SUM)
 /* numpy's pairwise sum of a contiguous row (scikit-learn's softmax adds so), below 129 values. */
 static double PFX_block_sum(const double *e, int n)
 {
@@ -297,7 +300,9 @@ static double PFX_pairwise_sum(const double *e, int n)
     }
     return ret;
 }
+#endif
 
+#if PFXU_USES_SOFTMAX
 static void PFX_softmax(double *z, int n)
 {
     double top = z[0], total = 0.0;
@@ -323,7 +328,7 @@ static void PFX_softmax(double *z, int n)
 }
 #endif
 
-#if PFXU_TRANSFORM == 5
+#if PFXU_TRANSFORM == 5 && !PFXU_CALIBRATED
 /* AdaBoost's decision values: divide by the total weight; two classes: -d0 + d1. */
 static void PFX_samme(double *acc)
 {
@@ -337,9 +342,181 @@ static void PFX_samme(double *acc)
 }
 #endif
 
+#if PFXU_CALIBRATED
+/* CalibratedClassifierCV (docs/calibration.md): fold f's raw scores are acc[f * FOLD_RAW ..];
+   its calibrator for class column c is entry f * per + c of the PFX_cal_ tables (per: 1 for
+   two classes, else one per class). Every product that meets an addition goes through a
+   volatile temporary, so no compiler can fuse the two into one rounding (FMA). */
+
+/* IsotonicRegression(out_of_bounds="clip").predict as numpy.interp computes it: clipped to
+   the knots' range; y[j] at a knot, else slope * (t - x[j]) + y[j]. The search halves a
+   knot range each step (bounded by the table size). */
+static double PFX_cal_isotonic(double t, int i)
+{
+    int lo = PFX_cal_knot_start[i], hi = PFX_cal_knot_start[i + 1] - 1;
+    volatile double prod;
+    double slope, v;
+    if (hi == lo) {
+        return PFX_cal_y[lo];
+    }
+    if (t != t) {
+        return t;
+    }
+    if (t <= PFX_cal_x[lo]) {
+        return PFX_cal_y[lo];
+    }
+    if (t >= PFX_cal_x[hi]) {
+        return PFX_cal_y[hi];
+    }
+    while (hi - lo > 1) { /* x[lo] <= t < x[hi] */
+        int mid = lo + (hi - lo) / 2;
+        if (PFX_cal_x[mid] <= t) {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    if (PFX_cal_x[lo] == t) {
+        return PFX_cal_y[lo];
+    }
+    slope = (PFX_cal_y[lo + 1] - PFX_cal_y[lo]) / (PFX_cal_x[lo + 1] - PFX_cal_x[lo]);
+    prod = slope * (t - PFX_cal_x[lo]);
+    v = prod + PFX_cal_y[lo];
+    if (v != v) {
+        prod = slope * (t - PFX_cal_x[lo + 1]);
+        v = prod + PFX_cal_y[lo + 1];
+        if (v != v && PFX_cal_y[lo] == PFX_cal_y[lo + 1]) {
+            v = PFX_cal_y[lo];
+        }
+    }
+    return v;
+}
+
+/* _SigmoidCalibration.predict: expit(-(a * t + b)) = 1 / (1 + exp(a * t + b)). */
+static double PFX_cal_sigmoid(double t, int i)
+{
+    volatile double prod = PFX_cal_a[i] * t;
+    return 1.0 / (1.0 + exp(prod + PFX_cal_b[i]));
+}
+
+/* Fold f's exact values from its raw scores r (AdaBoost: its decision values). */
+static void PFX_cal_fold_exact(const double *r, int f, double *d)
+{
+    int k;
+#if PFXU_TRANSFORM == 5
+    double e[PFXU_FOLD_RAW];
+    for (k = 0; k < PFXU_FOLD_RAW; ++k) {
+        e[k] = r[k] / PFX_cal_weight[f];
+    }
+    if (PFXU_FOLD_RAW == 2) {
+        d[0] = -e[0] + e[1];
+        return;
+    }
+    for (k = 0; k < PFXU_FOLD_RAW; ++k) {
+        d[k] = e[k];
+    }
+#else
+    (void)f;
+    for (k = 0; k < PFXU_FOLD_RAW; ++k) {
+        d[k] = r[k];
+    }
+#endif
+}
+
+/* Fold f's response: its decision values, or (PFXU_CAL_PROBABILITY) its probabilities, as its
+   classifier's decision_function / predict_proba give them; returns how many. */
+static int PFX_cal_response(const double *r, int f, double *d)
+{
+    int n = PFXU_FOLD_EXACT;
+    PFX_cal_fold_exact(r, f, d);
+#if PFXU_CAL_PROBABILITY
+    {
+        int k = 0;
+#if PFXU_TRANSFORM == 2
+        for (k = 0; k < n; ++k) {
+            d[k] = 1.0 / (1.0 + exp(-d[k]));
+        }
+#elif PFXU_TRANSFORM == 3
+        for (k = 0; k < n; ++k) {
+            d[k] = 1.0 / (1.0 + exp(-(2.0 * d[k])));
+        }
+#elif PFXU_TRANSFORM == 4
+        PFX_softmax(d, n);
+#elif PFXU_TRANSFORM == 5
+        if (n == 1) {
+            d[1] = d[0] / 2.0;
+            d[0] = -d[0] / 2.0;
+            n = 2;
+        } else {
+            for (k = 0; k < n; ++k) {
+                d[k] = d[k] / (double)(n - 1);
+            }
+        }
+        PFX_softmax(d, n);
+#endif
+        (void)k;
+    }
+#endif
+    return n;
+}
+
+/* CalibratedClassifierCV.predict_proba: per fold, one calibrator per class on its response
+   column (two classes: column 1 from the positive class's response, column 0 = 1 - p1; more:
+   divided by numpy's pairwise row sum, 1 / classes where it is 0), values in (1, 1 + 1e-5]
+   set to 1; the folds' probabilities added in fold order from 0 and divided by the count. */
+static void PFX_cal_proba(const double *acc, double *out)
+{
+    double resp[PFXU_FOLD_RAW + 1], p[PFXU_N_CAL_CLASSES];
+    int f, c, j, per = PFXU_N_CAL_CLASSES == 2 ? 1 : PFXU_N_CAL_CLASSES;
+    for (j = 0; j < PFXU_N_CAL_CLASSES; ++j) {
+        out[j] = 0.0;
+    }
+    for (f = 0; f < PFXU_N_FOLDS; ++f) {
+        int n = PFX_cal_response(acc + f * PFXU_FOLD_RAW, f, resp);
+        const double *t = resp + (n - per); /* two classes: the last column only */
+        for (c = 0; c < per; ++c) {
+            int i = f * per + c;
+            p[PFXU_N_CAL_CLASSES == 2 ? c + 1 : c] = PFX_cal_method[i] == 0 ? PFX_cal_isotonic(t[c], i)
+                                                                           : PFX_cal_sigmoid(t[c], i);
+        }
+#if PFXU_CAL_ROW_SUM
+        {
+            double s = PFX_pairwise_sum(p, PFXU_N_CAL_CLASSES);
+            for (j = 0; j < PFXU_N_CAL_CLASSES; ++j) {
+                p[j] = s != 0.0 ? p[j] / s : 1.0 / (double)PFXU_N_CAL_CLASSES;
+            }
+        }
+#else
+        p[0] = 1.0 - p[1];
+#endif
+        for (j = 0; j < PFXU_N_CAL_CLASSES; ++j) {
+            if (1.0 < p[j] && p[j] <= 1.0 + 1e-5) {
+                p[j] = 1.0;
+            }
+            out[j] += p[j];
+        }
+    }
+    for (j = 0; j < PFXU_N_CAL_CLASSES; ++j) {
+        out[j] = out[j] / (double)PFXU_N_FOLDS;
+    }
+}
+
+/* Every fold's exact values, fold after fold. */
+static void PFX_cal_exact(const double *acc, double *raw)
+{
+    int f;
+    for (f = 0; f < PFXU_N_FOLDS; ++f) {
+        PFX_cal_fold_exact(acc + f * PFXU_FOLD_RAW, f, raw + f * PFXU_FOLD_EXACT);
+    }
+}
+#endif
+
 /* The values a device reproduces bit for bit: raw scores (AdaBoost: its decision values). */
 static void PFX_exact(const double *acc, double *raw)
 {
+#if PFXU_CALIBRATED
+    PFX_cal_exact(acc, raw);
+#else
     double d[PFXU_N_RAW];
     int k;
     for (k = 0; k < PFXU_N_RAW; ++k) {
@@ -351,6 +528,7 @@ static void PFX_exact(const double *acc, double *raw)
     for (k = 0; k < PFXU_N_OUTPUTS; ++k) {
         raw[k] = d[k];
     }
+#endif
 }
 
 #if PFXU_N_TARGET_STEPS > 0
@@ -392,6 +570,9 @@ static void PFX_target(double *out)
 /* Predictions or class probabilities from raw scores. */
 static void PFX_transform(const double *acc, double *out)
 {
+#if PFXU_CALIBRATED
+    PFX_cal_proba(acc, out);
+#else
     int k;
     for (k = 0; k < PFXU_N_RAW; ++k) {
         out[k] = acc[k];
@@ -427,6 +608,7 @@ static void PFX_transform(const double *acc, double *out)
 #if PFXU_N_TARGET_STEPS > 0
     PFX_target(out);
 #endif
+#endif
 }
 
 #if PFXU_TASK != 0
@@ -434,7 +616,16 @@ static void PFX_transform(const double *acc, double *out)
 static int PFX_pick(const double *acc)
 {
     int best = 0;
-#if PFXU_TASK == 2
+#if PFXU_CALIBRATED
+    double p[PFXU_N_CAL_CLASSES];
+    int k;
+    PFX_cal_proba(acc, p); /* the first of the largest probabilities */
+    for (k = 1; k < PFXU_N_CAL_CLASSES; ++k) {
+        if (p[k] > p[best]) {
+            best = k;
+        }
+    }
+#elif PFXU_TASK == 2
     double score[1];
     PFX_transform(acc, score);
     best = score[0] - PFXU_OFFSET >= 0.0;

@@ -211,10 +211,6 @@ def generate(model, prefix="model"):
 
     Raises :class:`CTargetError` when the model needs what C cannot carry (text steps)."""
     prefix = prefix_from(prefix, prefix)
-    if getattr(model, "calibration", None) is not None:
-        raise CTargetError("CalibratedClassifierCV (outputs.calibration: %d folds) is not supported by the C "
-                           "target yet; score it with the Python device scorer (boxwood export MODEL -o "
-                           "model.json)" % len(model.calibration["folds"]))
     plan = _plan(model)
     up = prefix.upper()
     doc = model.doc
@@ -281,7 +277,16 @@ def generate(model, prefix="model"):
         ("DENOMINATOR", c_double(params.get("denominator", 0.0))),
         ("OFFSET", c_double(params.get("offset", 0.0))),
         ("N_TARGET_STEPS", str(len(model.target_steps))),
+        ("CALIBRATED", "1" if model.calibration is not None else "0"),
     ]
+    cal = model.calibration
+    if cal is not None:  # CalibratedClassifierCV (docs/calibration.md)
+        n_cls = len(model.classes)
+        n_folds = len(cal["folds"])
+        macros += [("N_FOLDS", str(n_folds)), ("FOLD_RAW", str(k // n_folds)),
+                   ("FOLD_EXACT", str(n_exact // n_folds)), ("N_CAL_CLASSES", str(n_cls)),
+                   ("CAL_PROBABILITY", "1" if cal["response"] == "probability" else "0"),
+                   ("CAL_ROW_SUM", "1" if cal["normalisation"] == "row_sum" else "0")]
     lines.append("/* ---- model tables: what boxwood verify reads back ---- */")
     for name, v in macros:
         lines.append("#define %s_%s %s" % (up, name, v))
@@ -293,6 +298,30 @@ def generate(model, prefix="model"):
     _table(lines, _int_type(-1, max(left + right)), "PFX_right", right, str)
     _table(lines, "double", "PFX_value", value, c_double, per_line=4)
     _table(lines, "uint8_t", "PFX_flags", flags, str, per_line=16)
+    if cal is not None:
+        methods, cal_a, cal_b, knot_start, knot_x, knot_y = [], [], [], [0], [], []
+        for params_f, cals in cal["folds"]:
+            for one in cals:
+                if one[0] == "sigmoid":
+                    methods.append(1)
+                    cal_a.append(one[1])
+                    cal_b.append(one[2])
+                else:
+                    methods.append(0)
+                    cal_a.append(0.0)
+                    cal_b.append(0.0)
+                    knot_x.extend(one[1])
+                    knot_y.extend(one[2])
+                knot_start.append(len(knot_x))
+        if model.post_transform == "samme":  # AdaBoost: each fold's own total weight
+            _table(lines, "double", "PFX_cal_weight", [p["weight_total"] for p, _ in cal["folds"]], c_double,
+                   per_line=4)
+        _table(lines, "uint8_t", "PFX_cal_method", methods, str, per_line=16)
+        _table(lines, "double", "PFX_cal_a", cal_a, c_double, per_line=4)
+        _table(lines, "double", "PFX_cal_b", cal_b, c_double, per_line=4)
+        _table(lines, _int_type(0, knot_start[-1]), "PFX_cal_knot_start", knot_start, str)
+        _table(lines, "double", "PFX_cal_x", knot_x, c_double, per_line=4)
+        _table(lines, "double", "PFX_cal_y", knot_y, c_double, per_line=4)
     if model.combine == "mean":
         counts = [outputs.count(j) if trees else 0 for j in range(k)]
         _table(lines, _int_type(0, max(counts)), "PFX_trees_per_output", counts, str)
@@ -388,12 +417,12 @@ def generate(model, prefix="model"):
     ]
     c_text = "\n".join(head + lines) + "\n" + ENGINE
     c_text = c_text.replace("PFXU_", up + "_").replace("PFX_", prefix + "_")
-    h_text = header(prefix, model.task, model.preprocesses, n_inputs, n_exact, model.n_outputs, n_classes,
-                    bool(labels))
+    h_text = header(prefix, model.task, model.preprocesses, n_inputs, n_exact,
+                    n_classes if cal is not None else model.n_outputs, n_classes, bool(labels), cal is not None)
     return c_text, h_text
 
 
-def header(prefix, task, preprocesses, n_inputs, n_exact, n_predictions, n_classes, has_labels):
+def header(prefix, task, preprocesses, n_inputs, n_exact, n_predictions, n_classes, has_labels, calibrated=False):
     """The text of PREFIX.h (the reader rebuilds it to check a header byte for byte)."""
     up = prefix.upper()
     inputs = "the features" if not preprocesses else "the raw fields (the pipeline's steps run in C)"
@@ -427,6 +456,8 @@ def header(prefix, task, preprocesses, n_inputs, n_exact, n_predictions, n_class
         out.append("#define %s_%s %d /* %s */" % (up, name, code, what))
     what = {"regression": "predictions", "classification": "class probabilities (a binary model with one "
             "raw score: the positive class's)", "outlier_detection": "score_samples"}[task]
+    if calibrated:
+        what = "calibrated class probabilities of all classes (CalibratedClassifierCV.predict_proba)"
     out += [
         "",
         "/* Raw scores: bit for bit what the source model computes before its output transform. */",

@@ -153,7 +153,8 @@ class NativeScorer:
         self._n = len(model.input_names)
         self._x = (ctypes.c_double * self._n)()
         self._out_raw = (ctypes.c_double * model.n_exact_values)()
-        self._out = (ctypes.c_double * model.n_outputs)()
+        n_out = len(model.classes) if model.calibration is not None else model.n_outputs  # calibrated: every class
+        self._out = (ctypes.c_double * n_out)()
 
     def _call(self, fn, x, out, row):
         if len(x) != self._n:

@@ -51,6 +51,8 @@ def same_model(a: Ensemble, b: Ensemble) -> Optional[str]:
     steps = lambda e: [(st["op"], bits(st.get("values") or [])) for st in e.target_steps]  # noqa: E731
     if steps(a) != steps(b):
         return "target steps differ"
+    if _cal_bits(a.calibration) != _cal_bits(b.calibration):
+        return "calibration differs (CalibratedClassifierCV's calibrators)"
     for fa, fb in zip(a.features, b.features):
         if (fa.name, fa.kind, fa.categories) != (fb.name, fb.kind, fb.categories):
             return "feature %r differs" % fa.name
@@ -70,6 +72,18 @@ def same_model(a: Ensemble, b: Ensemble) -> Optional[str]:
                                  and float(ta.threshold[n]).hex() != float(tb.threshold[n]).hex())):
                 return "tree %d node %d: split differs" % (t, n)
     return None
+
+
+def _cal_bits(cal: Any) -> Any:
+    """A calibration with every number as its hexadecimal bits (None stays None)."""
+    if cal is None:
+        return None
+    h = lambda v: float(v).hex()  # noqa: E731
+    return (cal["response"], cal["normalisation"],
+            [({k: h(v) for k, v in f["post_transform_params"].items()},
+              [(c["method"], h(c["a"]), h(c["b"])) if c["method"] == "sigmoid" else
+               (c["method"], [h(v) for v in c["x"]], [h(v) for v in c["y"]]) for c in f["calibrators"]])
+             for f in cal["folds"]])
 
 
 def self_check(ev: CEvaluator, ensemble: Ensemble) -> Tuple[bool, str]:

@@ -12,7 +12,7 @@ from boxwood_runtime import native
 from ...contract import Evaluator, Outputs
 from ...ir import Ensemble
 from ..registry import DamagedArtefact, FormatError, MissingDependency
-from .reader import check_head, expected_header, parse, read_text
+from .reader import check_head, expected_header, parse, read_text, widths
 
 BASE_FLAGS = ("-std=c99", "-Wall", "-Wextra", "-pedantic", "-Werror")
 ERRORS = {1: "a missing value, which this model does not accept",
@@ -63,13 +63,13 @@ class CEvaluator(Evaluator):
         self._lib = native.load_library(path, prefix)
         self._many = getattr(self._lib, prefix + "_score_many")
         self.inputs = CInputs(ensemble)
-        self.n_exact = 1 if ensemble.post_transform == "samme" and ensemble.n_outputs == 2 else ensemble.n_outputs
+        self.n_exact, self.n_out = widths(ensemble)
 
     def evaluate(self, rows: Sequence[Sequence[Any]]) -> Outputs:
         X = self.inputs.matrix(rows)
         n = len(rows)
         raw = np.empty((n, self.n_exact))
-        out = np.empty((n, self.ensemble.n_outputs))
+        out = np.empty((n, self.n_out))
         label = np.empty(n, dtype=np.intc)
         status = np.empty(n, dtype=np.intc)
         dp, ip = ctypes.POINTER(ctypes.c_double), ctypes.POINTER(ctypes.c_int)

@@ -366,6 +366,7 @@ def to_ensemble(text: str, where: str = "C file") -> Ensemble:
                           % (where, tb.int("MAX_DEPTH"), depth))
     target_steps = _target_steps(tb, k, where)
     classes = meta.get("classes")
+    calibration = _calibration(tb, k, transform, classes, params) if tb.flag("CALIBRATED") else None
     reference = None
     ref = meta.get("self_check")
     if isinstance(ref, dict) and ref.get("rows"):
@@ -382,7 +383,7 @@ def to_ensemble(text: str, where: str = "C file") -> Ensemble:
             accepts_infinity=tb.flag("ACCEPTS_INFINITY"), post_transform_params=params,
             softmax_sum="pairwise" if tb.flag("SOFTMAX_PAIRWISE") else "sequential",
             fields=list(fields) if has_steps else None, provenance=dict(meta.get("provenance") or {}),
-            target_steps=target_steps, reference=reference).check()
+            target_steps=target_steps, calibration=calibration, reference=reference).check()
     except (ModelError, TypeError, KeyError) as exc:
         raise FormatError("%s: the tables do not describe a valid ensemble: %s" % (where, exc))
 
@@ -410,6 +411,55 @@ def _target_steps(tb: "_Tables", k: int, where: str) -> List[Dict[str, Any]]:
         else:
             steps.append({"op": op, "values": [float(v) for v in c]})
     return steps
+def _calibration(tb: _Tables, k: int, transform: str, classes: Any, params: Dict[str, float]) -> Dict[str, Any]:
+    """Ensemble.calibration from the PFX_cal_ tables (CalibratedClassifierCV, docs/calibration.md)."""
+    where = tb.where
+    n_folds, fold_raw, fold_exact = tb.int("N_FOLDS"), tb.int("FOLD_RAW"), tb.int("FOLD_EXACT")
+    n_cls = tb.int("N_CAL_CLASSES")
+    if not isinstance(classes, list) or n_cls != len(classes) or n_cls < 2:
+        raise FormatError("%s: N_CAL_CLASSES does not count the description's classes" % where)
+    if n_folds < 1 or fold_raw < 1 or n_folds * fold_raw != k:
+        raise FormatError("%s: %d folds of %d raw outputs are not the %d raw outputs" % (where, n_folds, fold_raw, k))
+    if fold_exact != (1 if transform == "samme" and fold_raw == 2 else fold_raw):
+        raise FormatError("%s: FOLD_EXACT %d does not fit the folds' raw outputs" % (where, fold_exact))
+    if tb.flag("CAL_ROW_SUM") != (n_cls > 2):
+        raise FormatError("%s: CAL_ROW_SUM must be 1 exactly when there are more than two classes" % where)
+    per = 1 if n_cls == 2 else n_cls
+    weights = tb.table("cal_weight", n_folds) if transform == "samme" else None
+    method, a, b = tb.table("cal_method", n_folds * per), tb.table("cal_a", n_folds * per), tb.table("cal_b", n_folds * per)
+    start = tb.table("cal_knot_start", n_folds * per + 1)
+    xs, ys = tb.table("cal_x"), tb.table("cal_y")
+    if start[0] != 0 or start[-1] > min(len(xs), len(ys)) or any(start[i] > start[i + 1] for i in range(len(start) - 1)):
+        raise FormatError("%s: the calibrators' knot ranges are out of bounds" % where)
+    folds = []
+    for f in range(n_folds):
+        cals = []
+        for c in range(per):
+            i = f * per + c
+            lo, hi = start[i], start[i + 1]
+            if method[i] == 1 and lo == hi:
+                cals.append({"method": "sigmoid", "a": a[i], "b": b[i]})
+            elif method[i] == 0 and lo < hi and a[i] == 0.0 and b[i] == 0.0:
+                cals.append({"method": "isotonic", "x": list(xs[lo:hi]), "y": list(ys[lo:hi])})
+            else:
+                raise FormatError("%s: fold %d calibrator %d: method %r with %d knots is not one the code "
+                                  "computes" % (where, f, c, method[i], hi - lo))
+        fp = {"weight_total": weights[f]} if weights is not None else {}
+        folds.append({"post_transform_params": fp, "calibrators": cals})
+    if folds[0]["post_transform_params"] != params:
+        raise FormatError("%s: WEIGHT_TOTAL is not fold 0's weight total" % where)
+    return {"response": "probability" if tb.flag("CAL_PROBABILITY") else "decision",
+            "normalisation": "row_sum" if n_cls > 2 else "complement", "folds": folds}
+
+
+def widths(e: Ensemble) -> Tuple[int, int]:
+    """(values PREFIX_raw writes, values PREFIX_predict writes) per record: a calibrated
+    classifier writes every fold's exact values and the probabilities of all classes."""
+    fold = e.fold_outputs
+    per = 1 if e.post_transform == "samme" and fold == 2 else fold
+    if e.calibration is not None:
+        return per * e.n_folds, len(e.classes)
+    return per, e.n_outputs
 
 
 def _acyclic(tree: Tree) -> bool:
@@ -467,7 +517,7 @@ def expected_header(text: str, ensemble: Ensemble) -> str:
     from boxwood_runtime.csource import header
 
     prefix, _, tables, _ = parse(text)
-    n_exact = 1 if ensemble.post_transform == "samme" and ensemble.n_outputs == 2 else ensemble.n_outputs
+    n_exact, n_out = widths(ensemble)
     n_inputs = len(ensemble.fields) if ensemble.fields is not None else len(ensemble.features)
-    return header(prefix, ensemble.task, ensemble.fields is not None, n_inputs, n_exact, ensemble.n_outputs,
-                  len(ensemble.classes or []), "category_labels" in tables)
+    return header(prefix, ensemble.task, ensemble.fields is not None, n_inputs, n_exact, n_out,
+                  len(ensemble.classes or []), "category_labels" in tables, ensemble.calibration is not None)
