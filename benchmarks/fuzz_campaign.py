@@ -7,7 +7,9 @@ Targets (pluggable: add an entry to TARGETS, a class with ``seeds()``, ``mutant(
 and ``run(mutant)``):
 
 * ``artefact`` -- boxwood JSON artefacts of the conformance zoo (a pipeline, AdaBoost with two
-  and three classes, an isolation forest, a categorical HGB, a multiclass GB), mutated three
+  and three classes, an isolation forest, a categorical HGB, a multiclass GB; pipelines with
+  one-hot, target encoding and scalers, two calibrated classifiers, a transformed target and a
+  several-target regressor), mutated three
   ways in turn: a value in the document changed and the digest recomputed (the mutant gets past
   the digest and meets the structural checks and the self-check); bytes edited with the digest
   kept; bytes edited and the digest recomputed over them. ``loaded`` mutants of the digest-kept
@@ -148,7 +150,10 @@ class ArtefactTarget:
     bytes edited (digest recomputed)."""
 
     name = "artefact"
-    CASES = ["pipe_hgbr_encoded", "ada_binary", "ada_multiclass", "iforest", "hgbc_categorical", "gbc_multiclass"]
+    CASES = ["pipe_hgbr_encoded", "ada_binary", "ada_multiclass", "iforest", "hgbc_categorical", "gbc_multiclass",
+             # issue 15's parts: lookup and arithmetic steps, calibration, target steps, several targets
+             "pipe_hgbc_onehot_scaled", "pipe_gbr_target_encoded", "cal_gbc_sigmoid_multiclass",
+             "cal_rfc_isotonic_binary", "ttr_gbr_standard", "mor_hgbr"]
 
     def seeds(self):
         sys.path.insert(0, os.path.join(ROOT, "tests"))
