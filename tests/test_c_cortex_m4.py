@@ -25,7 +25,7 @@ from boxwood.numerics import ulp_distance
 from boxwood.sources.model import SourceEvaluator
 from test_conformance import probe_rows
 
-C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES]  # calibration cases included
+C_CASES = [n for n in zoo.ALL_CASES if n not in zoo.PIPELINE_CASES + zoo.C_REFUSED]  # calibration included
 PROBES = 60  # threshold probes per model, besides the reference rows
 ULPS = 4
 

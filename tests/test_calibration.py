@@ -41,8 +41,9 @@ PROBA_ULPS = 4
 def _calibrators(name):
     """(scikit-learn calibrator, its hub form) for every calibrator of a zoo case."""
     case, ensemble, _ = zoo.exported(name)
+    model = case.model.steps[-1][1] if hasattr(case.model, "steps") else case.model  # calibration last
     out = []
-    for cc, fold in zip(case.model.calibrated_classifiers_, ensemble.calibration["folds"]):
+    for cc, fold in zip(model.calibrated_classifiers_, ensemble.calibration["folds"]):
         out += list(zip(cc.calibrators, fold["calibrators"]))
     return out
 

@@ -182,6 +182,7 @@ def _build(name: str) -> Case:
             _Prefit(HGBC(max_iter=10, random_state=0, early_stopping=False), "sigmoid"), "breast_cancer+nan"),
         "cal_ada_isotonic_multiclass": lambda: (_cal(ADA(DTC(max_depth=2), n_estimators=6, random_state=0),
                                                      "isotonic"), "iris"),
+        "cal_last_step_onehot_hgbc_isotonic": lambda: (_pipe_onehot_then_calibrated(), "diabetes_strings_class"),
         "cal_pipe_hgbc_isotonic_prefit": lambda: (_Prefit(_pipe_impute_hgbc(), "isotonic"),
                                                   "breast_cancer_frame+nan"),
         # wrappers (issue 15): per-target regressors and transformed targets
@@ -280,8 +281,10 @@ PIPELINE_CASES = ["pipe_hgbr_encoded", "pipe_gbc_strict_encoder", "pipe_rfr_cons
 CALIBRATION_CASES = [
     "cal_rfc_isotonic_binary", "cal_rfc_sigmoid_multiclass_single", "cal_gbc_sigmoid_multiclass",
     "cal_gbc_isotonic_binary_prefit", "cal_hgbc_isotonic_multiclass", "cal_hgbc_sigmoid_binary_prefit",
-    "cal_ada_isotonic_multiclass", "cal_pipe_hgbc_isotonic_prefit",
+    "cal_ada_isotonic_multiclass", "cal_pipe_hgbc_isotonic_prefit", "cal_last_step_onehot_hgbc_isotonic",
 ]
+# Cases the C target refuses by design (text categories: one-hot of strings runs on the host).
+C_REFUSED = ["cal_last_step_onehot_hgbc_isotonic"]
 # MultiOutputRegressor and TransformedTargetRegressor (issue 15, item 5; tests/test_wrappers.py).
 WRAPPER_CASES = ["mor_gbr", "mor_hgbr", "mor_rfr_pipeline", "ttr_hgbr_log", "ttr_gbr_standard", "ttr_hgbr_log1p",
                  "ttr_hgbr_minmax", "ttr_pipeline_maxabs", "ttr_mor_robust", "pipe_ttr_hgbr_log"]
@@ -367,6 +370,24 @@ class _Prefit:
 
         self.estimator.fit(X[::2], y[::2])
         return CalibratedClassifierCV(FrozenEstimator(self.estimator), method=self.method)
+
+
+def _pipe_onehot_then_calibrated():
+    """As a data scientist ships it: one-hot the text columns, impute and standardise the
+    numbers, and calibrate a histogram booster as the pipeline's last step (cv=3: the
+    preprocessing is fitted once, each fold refits only the booster)."""
+    from sklearn.calibration import CalibratedClassifierCV
+    from sklearn.compose import ColumnTransformer
+    from sklearn.ensemble import HistGradientBoostingClassifier
+    from sklearn.impute import SimpleImputer
+    from sklearn.pipeline import Pipeline, make_pipeline
+    from sklearn.preprocessing import OneHotEncoder, StandardScaler
+
+    pre = ColumnTransformer([("cat", OneHotEncoder(handle_unknown="ignore"), ["sex", "bmi_band"]),
+                             ("num", make_pipeline(SimpleImputer(strategy="median"), StandardScaler()),
+                              NUMERIC_DIABETES)])
+    clf = HistGradientBoostingClassifier(max_iter=15, random_state=0, early_stopping=False)
+    return Pipeline([("pre", pre), ("calibrated", CalibratedClassifierCV(clf, method="isotonic", cv=3))])
 
 
 def _pipe_impute_hgbc():

@@ -14,7 +14,13 @@ from . import boosting, calibration, forests, pipeline, wrappers
 from .common import UnsupportedModel
 from .loading import PICKLE_WARNING, ModelFileError, load_model_file
 
-READERS = (boosting.read, forests.read, pipeline.read,
+
+def _pipeline_read(model: Any) -> Any:
+    """A Pipeline ending in a tree model, a wrapper or a CalibratedClassifierCV."""
+    return pipeline.read(model, pipeline.FINAL_READERS + (calibration.read,))
+
+
+READERS = (boosting.read, forests.read, _pipeline_read,
            wrappers.reader((boosting.read, forests.read, pipeline.read)), calibration.read)
 
 SUPPORTED = (
@@ -29,7 +35,8 @@ SUPPORTED = (
     "sklearn.ensemble.IsolationForest (score_samples, decision_function, predict)",
     "sklearn.ensemble.AdaBoostClassifier (SAMME, decision-tree base learners)",
     "sklearn.pipeline.Pipeline ending in one of the above, with steps: " + "; ".join(pipeline.SUPPORTED_STEPS),
-    "sklearn.calibration.CalibratedClassifierCV (isotonic, sigmoid; cv folds, ensemble=False, FrozenEstimator) "
+    "sklearn.calibration.CalibratedClassifierCV (isotonic, sigmoid; cv folds, ensemble=False, FrozenEstimator; "
+    "also as a Pipeline's last step) "
     "over one of the classifiers or pipelines above",
     "sklearn.multioutput.MultiOutputRegressor around any regressor above (or a Pipeline ending in one)",
     "sklearn.compose.TransformedTargetRegressor around any regressor above, with func/inverse_func "

@@ -104,6 +104,9 @@ def calibrated_raw(model: Any, ensemble: Ensemble, X: Any, n: int) -> np.ndarray
     """A CalibratedClassifierCV's exact values: each fold's classifier asked for its own
     (decision_function of boosting and AdaBoost, predict_proba of trees and forests; the
     FrozenEstimator of a prefit model unwrapped), fold after fold."""
+    if hasattr(model, "steps"):  # a Pipeline ending in the CalibratedClassifierCV: its steps first
+        X = model[:-1].transform(X)
+        model = model.steps[-1][1]
     parts = []
     for cc in model.calibrated_classifiers_:
         est = cc.estimator
@@ -140,6 +143,7 @@ class SourceEvaluator(Evaluator):
         # the other in order (the conformance suite sees bit-identical means), with more
         # jobs the order depends on the threads (from sklearn.ensemble._forest, stated).
         if ensemble.calibration is not None:  # the first fold's classifier (all folds share its settings)
+            model = model.steps[-1][1] if hasattr(model, "steps") else model
             model = model.calibrated_classifiers_[0].estimator
             model = getattr(model, "estimator", model) if type(model).__name__ == "FrozenEstimator" else model
         from .wrappers import tree_models  # the forests inside a pipeline or wrapper

@@ -343,14 +343,16 @@ def _column_transformer(ct: Any, columns: List[Program], where: str) -> List[Pro
     return out
 
 
-def read(model: Any) -> Optional[Ensemble]:
-    """Return the Ensemble (with preprocessing) for a supported Pipeline, or None."""
+def read(model: Any, final_readers: Any = None) -> Optional[Ensemble]:
+    """Return the Ensemble (with preprocessing) for a supported Pipeline, or None.
+    ``final_readers`` (default FINAL_READERS) read its last step; sources/__init__.py adds
+    the CalibratedClassifierCV reader, which itself reads pipelines (so no import here)."""
     from sklearn.pipeline import Pipeline
 
     if not isinstance(model, Pipeline):
         return None
     *pre, (last_name, final) = model.steps
-    ensemble = next((e for e in (read(final) for read in FINAL_READERS) if e is not None), None)
+    ensemble = next((e for e in (read(final) for read in (final_readers or FINAL_READERS)) if e is not None), None)
     if ensemble is None:
         raise UnsupportedModel("the pipeline's final step %r is %s, which is not a tree model boxwood reads"
                                % (last_name, type(final).__name__))
