@@ -287,3 +287,58 @@ def test_campaign_finding_tree_ensemble_without_n_targets():
     m = model_of("rfr")
     tree_node(m).attribute.remove(attr(tree_node(m), "n_targets"))
     refused(m, "n_targets")
+
+
+def _set_const(m, name, values):
+    """Replace the initializer (or Constant node value) ``name`` by ``values`` (float64)."""
+    from onnx import numpy_helper
+
+    for init in m.graph.initializer:
+        if init.name == name:
+            init.CopyFrom(numpy_helper.from_array(np.asarray(values, dtype=np.float64), name))
+            return
+    for n in m.graph.node:
+        if n.op_type == "Constant" and n.output[0] == name:
+            n.attribute[0].t.CopyFrom(numpy_helper.from_array(np.asarray(values, dtype=np.float64), name))
+            return
+    raise AssertionError("no constant %r" % name)
+
+
+def _const(m, name):
+    from onnx import numpy_helper
+
+    for init in m.graph.initializer:
+        if init.name == name:
+            return numpy_helper.to_array(init)
+    for n in m.graph.node:
+        if n.op_type == "Constant" and n.output[0] == name:
+            return numpy_helper.to_array(n.attribute[0].t)
+    raise AssertionError("no constant %r" % name)
+
+
+@pytest.mark.parametrize("value", [float("nan"), 0.0, 1e300])
+def test_campaign_finding_input_check_bound_on_a_numeric_column(value):
+    """Found by the campaign (seed 12, onnx mutant 9914): one byte of the input check's upper
+    bounds (``code_high``) turned a numeric column's +inf into NaN; onnxruntime then made every
+    value of that column missing while the reader ignored the check (16 of 17 probe rows
+    disagreed). The reader now accepts the check only as boxwood writes it."""
+    m = model_of("hgbc_categorical")
+    hi = _const(m, "code_high").copy()
+    j = int(np.flatnonzero(np.isinf(hi))[0])  # a numeric column
+    hi[j] = value
+    _set_const(m, "code_high", hi)
+    refused(m, "input check", "upper bounds")
+
+
+def test_campaign_finding_negative_isolation_leaf():
+    """Found by the campaign (seed 12, onnx mutant 3069): a negative leaf in an isolation forest
+    (a path length) was read, and the device scorer then refused the model with its own error
+    class outside the reader. The hub refuses it now, so the reader says so as OnnxReadError."""
+    from onnx import numpy_helper
+
+    m = model_of("iforest")
+    leaf = attr(tree_node(m), "leaf_weights")
+    w = numpy_helper.to_array(leaf.t).copy()
+    w[len(w) // 2] = -1.0
+    leaf.t.CopyFrom(numpy_helper.from_array(w, leaf.t.name))
+    refused(m, "path lengths")

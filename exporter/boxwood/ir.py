@@ -283,6 +283,11 @@ class Ensemble:
         for index, tree in enumerate(self.trees):
             _check_tree(tree, index, self.features, self.n_outputs)
         check_target_steps(self.target_steps, self.task, self.n_outputs)
+        if self.post_transform == "isolation" and (
+                any(b < 0.0 for b in self.base_values)
+                or any(v < 0.0 for t in self.trees for f, v in zip(t.feature, t.value) if f == LEAF)):
+            raise ModelError("an isolation forest's leaves and base value are path lengths; a negative one "
+                             "is not (the device scorer refuses it too)")
         return self
 
 

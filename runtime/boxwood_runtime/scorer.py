@@ -632,8 +632,15 @@ def _finite(value, where):
 _ARITHMETIC = ("sub", "div", "mul", "add", "clip")
 
 
+def _as_float(v, where):
+    """A JSON number as a float (an integer beyond the float64 range is refused by name)."""
+    _need(not isinstance(v, int) or -_MAX_INT_FLOAT < v < _MAX_INT_FLOAT, "%s is beyond the float64 range" % where)
+    return float(v)
+
+
 def _finite_number(v, where):
     _need(isinstance(v, (int, float)) and not isinstance(v, bool), "%s must hold numbers" % where)
+    _need(not isinstance(v, int) or -_MAX_INT_FLOAT < v < _MAX_INT_FLOAT, "%s is beyond the float64 range" % where)
     v = float(v)
     _need(v == v and v != _INF and v != -_INF, "%s must hold finite numbers" % where)
     return v
@@ -841,18 +848,18 @@ class Model:
                 _need(unknown == "error" or unknown is None or (isinstance(unknown, (int, float))
                                                                 and not isinstance(unknown, bool)),
                       "%s.unknown must be \"error\", a number or null" % at)
-                unknown = _NAN if unknown is None else (unknown if unknown == "error" else float(unknown))
+                unknown = _NAN if unknown is None else (unknown if unknown == "error" else _as_float(unknown, at + ".unknown"))
                 missing = step.get("missing", "unknown")
                 _need(missing in ("unknown", None) or (isinstance(missing, (int, float))
                                                        and not isinstance(missing, bool)),
                       "%s.missing must be a number or null" % at)
-                missing = missing if missing == "unknown" else (_NAN if missing is None else float(missing))
+                missing = missing if missing == "unknown" else (_NAN if missing is None else _as_float(missing, at + ".missing"))
                 none = missing  # version 1: None as NaN
                 if version >= 2:
                     none = step.get("none", "unknown")
                     _need(none == "unknown" or (isinstance(none, (int, float)) and not isinstance(none, bool)),
                           "%s.none must be a number" % at)
-                    none = none if none == "unknown" else float(none)
+                    none = none if none == "unknown" else _as_float(none, at + ".none")
                 if op == "lookup":  # the same matching; a category becomes its value, not its code
                     values = _get(step, "values", list, at)
                     _need(len(values) == len(cats), "%s.values must have one value per category" % at)
@@ -1793,6 +1800,8 @@ def _read_calibration(cal, model, limits):
     response = _get(cal, "response", str, where)
     _need(response in ("decision", "probability"), "%s.response must be \"decision\" or \"probability\""
           % where)
+    _need(isinstance(model.classes, list) and len(model.classes) >= 2,
+          "%s needs outputs.classes: a list of two or more class labels" % where)
     n = len(model.classes)
     norm = _get(cal, "normalisation", str, where)
     _need(norm == ("complement" if n == 2 else "row_sum"), "%s.normalisation %r does not fit %d classes"

@@ -4,7 +4,10 @@ attributes' real lengths before anything is allocated, every listed node reachab
 root, text that is UTF-8, and boxwood's metadata of the right types."""
 from __future__ import annotations
 
+import math
 from typing import Any, Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
 
 from ...ir import Reference
 from .parse import MAX_TARGETS, OnnxReadError
@@ -95,3 +98,58 @@ def meta_reference(ref: Any) -> Reference:
     if not len(out.rows) == len(out.raw) == len(out.transformed):
         raise OnnxReadError("metadata boxwood.reference: rows, raw and transformed differ in length")
     return out
+
+
+def check_input_mask(graph: Any, path: Any, features: Sequence[Any], where: str) -> None:
+    """The check boxwood writes before the tree operator (``build._sanitize_codes``): a category
+    code outside 0..n-1 or not a whole number becomes NaN, numeric columns pass, codes shift by
+    ``CODE_OFFSET``. The reader leaves unknown codes to the scorer's own rules, so it accepts that
+    check only as written, node by node and constant by constant for the features read: another
+    bound (a NaN or finite ``code_high`` on a numeric column, found by the fuzz campaign) would
+    make onnxruntime treat other values as missing than boxwood does."""
+    from .build import CODE_OFFSET  # one package: the writer's own constant
+
+    wheres = [n for n in path.path_nodes if n.op_type == "Where"]
+    if not wheres:
+        return
+    lo = [0.0 if f.is_categorical else -math.inf for f in features]
+    hi = [float(len(f.categories) - 1) if f.is_categorical else math.inf for f in features]
+    numeric = [not f.is_categorical for f in features]
+    offset = [CODE_OFFSET if f.is_categorical else 0.0 for f in features]
+
+    def bad(why: str) -> OnnxReadError:
+        return OnnxReadError("%s: the input check before the trees is not the one boxwood writes for these "
+                             "features (%s)" % (where, why))
+
+    def node(name: str, op: str) -> Any:
+        n = graph.producer.get(name)
+        if n is None or n.op_type != op or n.domain not in ("", "ai.onnx"):
+            raise bad("expected %s for %r" % (op, name))
+        return n
+
+    def same(name: str, want: Sequence[Any], label: str) -> None:
+        got = graph.const(name)
+        if got is None or np.asarray(got).ravel().tolist() != list(want):
+            raise bad("%s is %s, expected %s" % (label, None if got is None else np.asarray(got).ravel().tolist()[:8],
+                                                 list(want)[:8]))
+
+    if len(wheres) != 1:
+        raise bad("%d Where nodes" % len(wheres))
+    cond, values, _ = wheres[0].input
+    shifted = node(values, "Add")
+    x = shifted.input[0]
+    same(shifted.input[1], offset, "the code offsets")
+    both = node(cond, "And")
+    in_range, whole_or_numeric = both.input
+    rng = node(in_range, "And")
+    ge, le = node(rng.input[0], "GreaterOrEqual"), node(rng.input[1], "LessOrEqual")
+    if ge.input[0] != x or le.input[0] != x:
+        raise bad("the range test does not read the input values")
+    same(ge.input[1], lo, "the lower bounds")
+    same(le.input[1], hi, "the upper bounds")
+    either = node(whole_or_numeric, "Or")
+    eq = node(either.input[0], "Equal")
+    same(either.input[1], numeric, "the numeric-column flags")
+    floor = node(eq.input[0], "Floor")
+    if eq.input[1] != x or floor.input[0] != x:
+        raise bad("the whole-number test does not read the input values")

@@ -33,7 +33,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 
 from ...ir import LEAF, Ensemble, Feature, ModelError, Tree
-from .guards import as_text, check_flags, check_reached, claimed_targets, meta_list, meta_reference
+from .guards import as_text, check_flags, check_input_mask, check_reached, claimed_targets, meta_list, meta_reference
 from .parse import (MAX_FEATURES, MAX_TARGETS, ML_DOMAIN, OUTPUT_OPS, TREE_OPS, Graph, InputPath, OnnxReadError,
                     load, metadata, node_label, onnx_module, target_steps_of)
 
@@ -665,6 +665,7 @@ def _read_onnx(source: Any) -> Ensemble:
     ref = meta.get("boxwood.reference")
     if exact_source and ref is not None:
         ensemble.reference = meta_reference(ref)
+    check_input_mask(graph, path, ensemble.features, where)
     try:
         return ensemble.check()
     except ModelError as exc:
