@@ -230,6 +230,17 @@ def test_damaged_calibration_is_refused_at_load():
         boxwood_runtime.load(scorer.artefact_bytes(bad))
 
 
+def test_fold_weight_total_of_zero_is_refused_at_load():
+    """AdaBoost's decision values divide by weight_total (scikit-learn's SAMME): a later fold's
+    weight_total of 0 must be refused at load, not end in ZeroDivisionError when scoring (the
+    top-level one, fold 0's, was already checked)."""
+    _, doc = document("cal_ada_isotonic_multiclass")
+    bad = copy.deepcopy(doc)
+    bad["outputs"]["calibration"]["folds"][2]["post_transform_params"]["weight_total"] = 0.0
+    with pytest.raises(scorer.ArtefactError, match=r"folds\[2\]\.post_transform_params\.weight_total must be > 0"):
+        boxwood_runtime.load(scorer.artefact_bytes(bad))
+
+
 # ----------------------------------------------------------------------------- verify
 def test_clean_calibrated_artefact_verifies(tmp_path):
     case, _, data = zoo.exported("cal_gbc_sigmoid_multiclass")

@@ -367,7 +367,7 @@ def test_new_steps_in_a_version_2_document_are_refused():
 
 @pytest.mark.parametrize("mutate, message", [
     (lambda st: st.__setitem__("values", st["values"][:-1]), "one value per category"),
-    (lambda st: st["values"].__setitem__(0, "1"), "must hold numbers"),
+    (lambda st: st["values"].__setitem__(0, "1"), "is not a number"),
     (lambda st: st.__setitem__("unknown", None), "unknown must be"),
 ])
 def test_malformed_lookup_refused_naming_the_path(mutate, message):

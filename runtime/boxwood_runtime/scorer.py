@@ -628,22 +628,7 @@ def _finite(value, where):
     return value
 
 
-
 _ARITHMETIC = ("sub", "div", "mul", "add", "clip")
-
-
-def _as_float(v, where):
-    """A JSON number as a float (an integer beyond the float64 range is refused by name)."""
-    _need(not isinstance(v, int) or -_MAX_INT_FLOAT < v < _MAX_INT_FLOAT, "%s is beyond the float64 range" % where)
-    return float(v)
-
-
-def _finite_number(v, where):
-    _need(isinstance(v, (int, float)) and not isinstance(v, bool), "%s must hold numbers" % where)
-    _need(not isinstance(v, int) or -_MAX_INT_FLOAT < v < _MAX_INT_FLOAT, "%s is beyond the float64 range" % where)
-    v = float(v)
-    _need(v == v and v != _INF and v != -_INF, "%s must hold finite numbers" % where)
-    return v
 
 
 def _arithmetic(step, at):
@@ -656,7 +641,7 @@ def _arithmetic(step, at):
         _need(isinstance(item, list) and len(item) >= 2 and item[0] in _ARITHMETIC,
               "%s must be [operation, constant] with an operation among %s" % (where, ", ".join(_ARITHMETIC)))
         _need(len(item) == (3 if item[0] == "clip" else 2), "%s has the wrong number of constants" % where)
-        consts = tuple(_finite_number(c, where) for c in item[1:])
+        consts = tuple(_finite(c, where) for c in item[1:])
         out.append((item[0],) + consts)
     return tuple(out)
 
@@ -848,23 +833,25 @@ class Model:
                 _need(unknown == "error" or unknown is None or (isinstance(unknown, (int, float))
                                                                 and not isinstance(unknown, bool)),
                       "%s.unknown must be \"error\", a number or null" % at)
-                unknown = _NAN if unknown is None else (unknown if unknown == "error" else _as_float(unknown, at + ".unknown"))
+                unknown = _NAN if unknown is None else (
+                    unknown if unknown == "error" else _number(unknown, at + ".unknown"))
                 missing = step.get("missing", "unknown")
                 _need(missing in ("unknown", None) or (isinstance(missing, (int, float))
                                                        and not isinstance(missing, bool)),
                       "%s.missing must be a number or null" % at)
-                missing = missing if missing == "unknown" else (_NAN if missing is None else _as_float(missing, at + ".missing"))
+                missing = missing if missing == "unknown" else (
+                    _NAN if missing is None else _number(missing, at + ".missing"))
                 none = missing  # version 1: None as NaN
                 if version >= 2:
                     none = step.get("none", "unknown")
                     _need(none == "unknown" or (isinstance(none, (int, float)) and not isinstance(none, bool)),
                           "%s.none must be a number" % at)
-                    none = none if none == "unknown" else _as_float(none, at + ".none")
+                    none = none if none == "unknown" else _number(none, at + ".none")
                 if op == "lookup":  # the same matching; a category becomes its value, not its code
                     values = _get(step, "values", list, at)
                     _need(len(values) == len(cats), "%s.values must have one value per category" % at)
                     for c, value in zip(cats, values):
-                        codes[c] = _finite_number(value, "%s.values" % at)
+                        codes[c] = _finite(value, "%s.values" % at)
                     _need(unknown == "error" or unknown == unknown, "%s.unknown must be a number" % at)
                     _need(missing == "unknown" or missing == missing, "%s.missing must be a number" % at)
                     steps.append(("lookup", codes, unknown, missing, cats, none))
@@ -974,8 +961,7 @@ class Model:
             values = step["values"]
             _need(isinstance(values, list) and len(values) == self.n_outputs,
                   "%s.values must hold %d numbers (one per output)" % (where, self.n_outputs))
-            values = [_number(v, "%s.values[%d]" % (where, j)) for j, v in enumerate(values)]
-            _need(all(v - v == 0.0 for v in values), where + ".values must be finite")
+            values = [_finite(v, "%s.values[%d]" % (where, j)) for j, v in enumerate(values)]
             _need(op != "div" or all(v != 0.0 for v in values), where + " divides by zero")
             self.target_steps.append((op, values))
 
@@ -1815,7 +1801,8 @@ def _read_calibration(cal, model, limits):
         params = _get(fold, "post_transform_params", dict, at)
         _need(sorted(params) == sorted(_TRANSFORM_PARAMS[model.post_transform]),
               "%s.post_transform_params must hold %s" % (at, list(_TRANSFORM_PARAMS[model.post_transform])))
-        params = dict((k, _number(v, "%s.post_transform_params.%s" % (at, k))) for k, v in params.items())
+        params = dict((k, _finite(v, "%s.post_transform_params.%s" % (at, k))) for k, v in params.items())
+        _need(params.get("weight_total", 1.0) > 0.0, "%s.post_transform_params.weight_total must be > 0" % at)
         cals = _get(fold, "calibrators", list, at)
         _need(len(cals) == per, "%s.calibrators: %d classes need %d calibrators" % (at, n, per))
         read = []
@@ -1826,18 +1813,16 @@ def _read_calibration(cal, model, limits):
                   "%s must be {\"method\": \"isotonic\", \"x\", \"y\"} or {\"method\": \"sigmoid\", "
                   "\"a\", \"b\"}" % ct)
             if method == "sigmoid":
-                a, b = _number(one["a"], ct + ".a"), _number(one["b"], ct + ".b")
-                _need(a - a == 0.0 and b - b == 0.0, "%s: a and b must be finite" % ct)
+                a, b = _finite(one["a"], ct + ".a"), _finite(one["b"], ct + ".b")
                 read.append(("sigmoid", a, b))
                 continue
             xs, ys = _get(one, "x", list, ct), _get(one, "y", list, ct)
             _need(0 < len(xs) == len(ys) <= limits["max_nodes_per_tree"], "%s: x and y must be equally long "
                   "and hold 1 to max_nodes_per_tree knots" % ct)
-            xs = [_number(v, "%s.x[%d]" % (ct, i)) for i, v in enumerate(xs)]
-            ys = [_number(v, "%s.y[%d]" % (ct, i)) for i, v in enumerate(ys)]
-            for i in range(len(xs)):
-                _need(xs[i] - xs[i] == 0.0 and ys[i] - ys[i] == 0.0, "%s: knot %d is not finite" % (ct, i))
-                _need(i == 0 or xs[i - 1] < xs[i], "%s.x[%d] does not increase strictly" % (ct, i))
+            xs = [_finite(v, "%s.x[%d]" % (ct, i)) for i, v in enumerate(xs)]
+            ys = [_finite(v, "%s.y[%d]" % (ct, i)) for i, v in enumerate(ys)]
+            for i in range(1, len(xs)):
+                _need(xs[i - 1] < xs[i], "%s.x[%d] does not increase strictly" % (ct, i))
             read.append(("isotonic", xs, ys))
         out.append((params, read))
     return {"response": response, "normalisation": norm, "folds": out}
